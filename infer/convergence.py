@@ -1,0 +1,88 @@
+"""The stopping rule: is the evidence of convergence in?
+
+A chain meets the rule when, after automatic burn-in removal (`diagnostics.burn_in`, a multiple of the
+largest integrated autocorrelation time), for every sampled and derived quantity:
+  * the rank-normalised split-R̂ (Vehtari et al. 2021, Bayesian Analysis 16, 667) between the independent
+    ensembles is below ``rhat_below`` (default 1.01, the paper's recommendation);
+  * bulk and tail effective sample sizes (same paper) exceed ``ess_above``;
+  * the run is longer than ``tau_multiple`` × the largest τ_int (default 50, the rule of thumb of
+    Foreman-Mackey et al. 2013, PASP 125, 306 for trusting the τ estimate itself);
+  * at least ``min_steps`` steps were taken.
+`assess` returns every figure so that progress lines, `infer status` and the chain file can show why a
+run stopped or what it still lacks; `eta_steps` extrapolates the remaining steps from ESS ∝ kept steps.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from . import diagnostics
+from .samples import Samples
+
+
+@dataclass
+class Verdict:
+    step: int
+    burn: int
+    rhat_max: float
+    ess_bulk_min: float
+    ess_tail_min: float
+    tau_max: float
+    met: bool
+    missing: list[str] = field(default_factory=list)    # human-readable unmet targets
+    per_param: dict = field(default_factory=dict)
+
+    def row(self) -> dict:
+        d = asdict(self)
+        return {k: float(d[k]) for k in ("step", "rhat_max", "ess_bulk_min", "ess_tail_min", "tau_max", "met")}
+
+
+def assess(samples: Samples, rule, burn: int | None = None) -> Verdict:
+    """Diagnostics of ``samples`` against a `config.Stopping` rule (``burn`` None: automatic)."""
+    T = samples.steps
+    values = np.concatenate([samples.position, samples.derived], axis=-1)      # (T, E, W, P+D)
+    names = list(samples.all_names)
+    finite = np.all(np.isfinite(values), axis=(0, 1, 2))
+    values, names = values[..., finite], [n for n, ok in zip(names, finite) if ok]
+    if T < 8:
+        return Verdict(T, 0, math.inf, 0.0, 0.0, math.nan, False, ["too few steps to judge"])
+    if burn is None:
+        pre = diagnostics.all_diagnostics(values, names)
+        tau_all = max((d["tau"] for d in pre.values()), default=math.nan)
+        burn = diagnostics.burn_in(tau_all, T)
+    kept = values[burn:]
+    per = diagnostics.all_diagnostics(kept, names)
+    rhat = max(d["rhat"] for d in per.values())
+    eb = min(d["ess_bulk"] for d in per.values())
+    et = min(d["ess_tail"] for d in per.values())
+    tau = max(d["tau"] for d in per.values())
+    missing = []
+    if not rhat < rule.rhat_below:
+        missing.append(f"R̂ {rhat:.3f} ≥ {rule.rhat_below}")
+    if not min(eb, et) > rule.ess_above:
+        missing.append(f"ESS {min(eb, et):.0f} ≤ {rule.ess_above:.0f}")
+    if not T > rule.tau_multiple * tau:
+        missing.append(f"steps {T} ≤ {rule.tau_multiple:g}τ = {rule.tau_multiple * tau:.0f}")
+    if T < rule.min_steps:
+        missing.append(f"steps {T} < min_steps {rule.min_steps}")
+    _nan_to_inf = (lambda x: x if math.isfinite(x) else math.inf)
+    return Verdict(T, burn, _nan_to_inf(rhat), float(np.nan_to_num(eb)), float(np.nan_to_num(et)),
+                   _nan_to_inf(tau), not missing, missing, per)
+
+
+def eta_steps(v: Verdict, rule) -> float:
+    """Steps still needed, extrapolated: ESS grows ∝ kept steps, and the run must exceed tau_multiple·τ."""
+    if v.met:
+        return 0.0
+    kept = max(1, v.step - v.burn)
+    ess = min(v.ess_bulk_min, v.ess_tail_min)
+    need = 0.0
+    if ess > 0:
+        need = max(need, kept * (rule.ess_above / ess) - kept)
+    else:
+        return math.inf
+    if math.isfinite(v.tau_max):
+        need = max(need, rule.tau_multiple * v.tau_max - v.step)
+    return max(need, rule.min_steps - v.step, 0.0)

@@ -1,0 +1,87 @@
+"""Shared fixtures: a small dataset for the exactly solvable template model, and run files around it."""
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from infer import dataset, mock
+from infer.theory.templates import NAMES, TemplateTheory
+
+TRUTH = {"a_1": 1.0, "a_2": 1.0, "a_3": 1.0, "a_4": 1.0}
+
+
+def make_quick_dataset(path: Path, seed: int = 7) -> Path:
+    """A mock dataset (invented experiment) whose spectra are the template model at TRUTH."""
+    exp = mock.Experiment(name="Templateville (invented test experiment)", fsky=0.05, noise_uK_arcmin=60.0,
+                          beam_fwhm_arcmin=10.0, ell_min=30, ell_max=1029, bin_width=50,
+                          spectra=("TT", "TE", "EE"))
+    spectra = TemplateTheory(exp.ell_max + 2, {}).compute(TRUTH)
+    dataset.write(mock.simulate(exp, spectra, seed=seed, realise=True), str(path))
+    return path
+
+
+@pytest.fixture(scope="session")
+def quick_data(tmp_path_factory) -> Path:
+    return make_quick_dataset(tmp_path_factory.mktemp("data") / "quick_bandpowers.h5")
+
+
+def quick_config_text(data: Path, chain: Path, *, steps=400, walkers=16, ensembles=2, workers=0, seed=11,
+                      moves="de-snooker", checkpoint_steps=25, check_every=50, theory_extra="",
+                      stopping_extra="", priors=None) -> str:
+    priors = priors or {n: "{ uniform = [0.0, 3.0] }" for n in NAMES}
+    params = "\n".join(f"[parameters.{n}]\nprior = {priors[n]}\nguess = 1.0\nspread = 0.05\ntex = 'a_{i + 1}'\n"
+                       for i, n in enumerate(NAMES))
+    return textwrap.dedent(f"""\
+        [run]
+        name = "quick-test"
+        seed = {seed}
+
+        [dataset]
+        file = "{data}"
+
+        [theory]
+        code = "templates"
+        {theory_extra}
+
+        [sampling]
+        walkers = {walkers}
+        ensembles = {ensembles}
+        steps = {steps}
+        moves = "{moves}"
+        workers = {workers}
+        checkpoint_steps = {checkpoint_steps}
+
+        [stopping]
+        check_every = {check_every}
+        rhat_below = 1.01
+        ess_above = 1e9
+        {stopping_extra}
+
+        [output]
+        chain = "{chain}"
+        """) + params
+
+
+@pytest.fixture
+def write_config(tmp_path, quick_data):
+    """write_config(**options) -> (config path, chain path) in a fresh folder."""
+    def make(name="run.toml", **options):
+        chain = tmp_path / "chains" / (Path(name).stem + ".h5")
+        path = tmp_path / name
+        path.write_text(quick_config_text(quick_data, chain, **options))
+        return path, chain
+    return make
+
+
+def analytic_posterior(data_path: Path):
+    """Closed-form posterior of the template amplitudes under flat priors (linear-Gaussian model)."""
+    data = dataset.load(data_path)
+    theory = TemplateTheory(data.ell_max_needed, {})
+    A = theory.design_matrix(data.kind, data.window_ell, data.window)
+    cinv = np.linalg.inv(data.covariance)
+    cov = np.linalg.inv(A.T @ cinv @ A)
+    mean = cov @ A.T @ cinv @ data.value
+    return mean, cov
