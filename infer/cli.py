@@ -325,19 +325,31 @@ def cmd_simulate(args) -> int:
     from . import mock
     from .theory import make_theory
     exp, fiducial, options = mock.read_experiment(args.spec)
-    theory_settings = options.get("theory", {"code": "camb", "accuracy": "standard"})
-    out = Path(args.out).resolve()
+    theory_settings = dict(options["theory"])
+    if theory_settings["code"] == "camb":      # the fixed inputs of the fiducial go to the backend
+        for key in ("sum_mnu_eV", "n_eff"):
+            if key in fiducial:
+                theory_settings.setdefault(key, fiducial[key])
+    if args.out is None and options.get("output") is None:
+        raise UserError(f"{args.spec}: no output file: give OUT on the command line or [mock] output")
+    out = Path(args.out if args.out is not None else options["output"]).resolve()
     if out.exists() and not args.replace:
         raise UserError(f"{out} already exists (pass --replace to overwrite it)")
     _check_writable_dir(out)
     theory = make_theory(theory_settings, exp.ell_max + 2, where=f"{args.spec}: [theory]")
+    missing = [k for k in getattr(theory, "required", theory.inputs) if k not in fiducial]
+    if missing:
+        raise UserError(f"{args.spec}: [fiducial] lacks {', '.join(missing)} needed by theory code "
+                        f"'{theory_settings['code']}'")
     inputs = {k: v for k, v in fiducial.items() if k in theory.inputs}
     spectra = theory.compute(inputs)
     seed = args.seed if args.seed is not None else options.get("seed")
-    bp = mock.simulate(exp, spectra, seed=seed, realise=not args.no_noise)
-    desc = (f"Mock band powers of the fictional experiment '{exp.name}' made by `infer simulate` from "
-            f"{args.spec} (fiducial {json.dumps(fiducial)}; noise realisation: "
-            f"{'seed ' + str(seed) if not args.no_noise else 'none'})")
+    realise = options.get("realise", True) and not args.no_noise
+    bp = mock.simulate(exp, spectra, seed=seed, realise=realise)
+    desc = options.get("description") or f"Mock band powers of the fictional experiment '{exp.name}'"
+    desc += (f" [made by `infer simulate {Path(args.spec).name}`; fiducial {json.dumps(fiducial)}; "
+             f"theory {json.dumps(theory.describe(), default=str)}; noise realisation: "
+             f"{'seed ' + str(seed) if realise else 'none'}]")
     datasets.write(bp, str(out), overwrite=args.replace, description=desc)
     print(f"wrote {out}: {len(bp.value)} bands ({'/'.join(bp.spectra)}), ℓ {int(bp.ell_lo.min())}–"
           f"{int(bp.ell_hi.max())}, experiment '{exp.name}'")
@@ -425,7 +437,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     g = sub.add_parser("simulate", help="mock band powers for an invented experiment")
     g.add_argument("spec", help="experiment spec (TOML, see configs/kestrel.toml)")
-    g.add_argument("out", help="dataset file to write (.h5)")
+    g.add_argument("out", nargs="?", help="dataset file to write (.h5; default: [mock] output of the spec)")
     g.add_argument("--seed", type=int, help="seed of the noise realisation")
     g.add_argument("--no-noise", action="store_true", help="band powers equal to the binned fiducial theory")
     g.add_argument("--replace", action="store_true", help="overwrite an existing output file")
