@@ -159,7 +159,14 @@ def cmd_run(args) -> int:
                      walkers=cfg.sampling.walkers, start=start, rng=rng, provenance=provenance)
         log.info("chain file: %s", chain)
         state = store.read()
-        return _drive(cfg, store, posterior, state, event("start", steps=0, workers=cfg.sampling.workers), clock)
+        code = _drive(cfg, store, posterior, state, event("start", steps=0, workers=cfg.sampling.workers), clock)
+    return _maybe_summarize(args, chain, code)
+
+
+def _maybe_summarize(args, chain, code):
+    if args.summarize and code == EXIT_OK:
+        summarize_chain(chain)
+    return code
 
 
 def _replace_paths(cfg, chain):
@@ -223,8 +230,9 @@ def cmd_resume(args) -> int:
             return EXIT_OK
         log.info("resuming %s at step %d towards %d%s", chain, state.steps_done, cfg.sampling.steps,
                  f" (changes: {'; '.join(changes)})" if changes else "")
-        return _drive(cfg, store, posterior, state,
+        code = _drive(cfg, store, posterior, state,
                       event("resume", steps=state.steps_done, changes=changes), clock)
+    return _maybe_summarize(args, chain, code)
 
 
 def cmd_status(args) -> int:
@@ -279,8 +287,14 @@ def cmd_status(args) -> int:
 
 
 def cmd_summarize(args) -> int:
+    return summarize_chain(args.chain, args.out, args.burn, args.no_model)
+
+
+def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
+    from types import SimpleNamespace
     from . import convergence, summary
     from .store import ChainStore
+    args = SimpleNamespace(chain=str(chain), out=out, burn=burn, no_model=no_model)
     state = ChainStore(args.chain).read()
     cfg = stored_config(state)
     s = state.samples
@@ -308,8 +322,10 @@ def cmd_summarize(args) -> int:
                            "pte_best": post.like.pte(chi2, dof)})
         except UserError as err:
             log.warning("no data-vs-model figure: %s", err)
+    rule = (f"set with --burn" if args.burn is not None else
+            f"automatic: 5 × the largest autocorrelation time of any quantity, at most half the run")
     paths = summary.write_summary(s, str(outdir), burn=v.burn, dataset=dataset, best_model=model,
-                                  ess_target=cfg.stopping.ess_above)
+                                  ess_target=cfg.stopping.ess_above, burn_rule=rule)
     verdict = "met every stopping target" if v.met else "NOT converged: " + "; ".join(v.missing)
     print(f"summary of {args.chain} ({state.steps_done} steps, {v.burn} discarded as burn-in): {verdict}")
     if "chi2_best" in s.meta:
@@ -422,6 +438,8 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--steps", type=int, help="total length to reach (overrides [sampling] steps)")
         sp.add_argument("--workers", type=int, help="worker processes for the posterior (0: in this process)")
         sp.add_argument("--time-limit", help="wall-time budget, e.g. 47:30:00; stops cleanly before it")
+        sp.add_argument("--summarize", action="store_true",
+                        help="when the run ends (not when paused), write the summary tables and figures")
 
     s = sub.add_parser("status", help="progress and convergence figures of a chain (also while it runs)")
     s.add_argument("chain")
@@ -468,11 +486,13 @@ def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.debug, args.quiet)
-    from .mpi import is_root, world_size
-    if world_size() > 1 and not is_root() and args.command in ("run", "resume"):
-        from .mpi import serve
-        return serve(args)
+    from . import mpi
+    parallel = mpi.world_size() > 1
+    if parallel and not mpi.is_root():
+        return mpi.serve(args)      # evaluates for rank 0 in run/resume; every other command runs on rank 0 only
     try:
+        if parallel and args.command in mpi.MPI_COMMANDS:
+            mpi.start()
         return args.func(args)
     except UserError as err:
         if args.debug:
@@ -489,9 +509,8 @@ def main(argv=None) -> int:
               "and please report it)", file=sys.stderr)
         return EXIT_INTERNAL
     finally:
-        if world_size() > 1 and args.command in ("run", "resume"):
-            from .mpi import shutdown
-            shutdown()
+        if parallel and args.command in mpi.MPI_COMMANDS:
+            mpi.shutdown()
 
 
 if __name__ == "__main__":

@@ -208,6 +208,8 @@ def _ess(x: np.ndarray) -> float:
     except that ``nan`` (not chains·n) is returned when every chain is constant.
     """
     n_chains, n = x.shape
+    if n < 4:  # split halves of fewer than 4 draws leave no lag pair to sum
+        return math.nan
     if np.all(np.ptp(x, axis=1) == 0.0):  # no within-chain variation: ESS undefined
         return math.nan
     acov = _mean_autocovariance(x)

@@ -320,3 +320,12 @@ def test_all_diagnostics_rejects_bad_shapes(ensembles):
         dg.all_diagnostics(ensembles, ["a", "a"])
     with pytest.raises(ValueError):
         dg.all_diagnostics(ensembles[..., 0], ["a"])
+
+
+@pytest.mark.parametrize("n", [2, 4, 5, 7])
+def test_very_short_chains_give_nan_not_an_error(n):
+    # Fewer than 4 draws per split half leave no autocorrelation pair (Vehtari et al. 2021, §3.2):
+    # ESS is undefined and must come back as nan rather than raising.
+    x = np.random.default_rng(n).normal(size=(2, n))
+    assert math.isnan(dg.ess_bulk(x))
+    assert math.isnan(dg.ess_tail(x))
