@@ -267,8 +267,9 @@ def parse(text: str, path: str) -> Config:
     for key in ("ell_min", "ell_max"):
         if key in ds:
             _number(path, f"dataset.{key}", ds[key], integer=True, low=2)
-    if "units" in ds and ds["units"] not in ("Dl_uK2", "Cl_K2"):
-        raise UserError(f"{path}: 'dataset.units' must be 'Dl_uK2' or 'Cl_K2', got {ds['units']!r}")
+    units = ("Dl_uK2", "Dl_K2", "Cl_uK2", "Cl_K2")
+    if "units" in ds and ds["units"] not in units:
+        raise UserError(f"{path}: 'dataset.units' must be one of {', '.join(units)}, got {ds['units']!r}")
 
     theory = raw.get("theory")
     if theory is None or not isinstance(theory, dict) or "code" not in theory:
