@@ -10,6 +10,7 @@ import json
 import logging
 import os
 import platform
+import signal
 import socket
 import sys
 import time
@@ -56,15 +57,29 @@ def _override(cfg, args):
     return replace(cfg, sampling=sampling, stopping=stopping)
 
 
-def make_evaluator(cfg, posterior):
-    from .evaluate import InProcess, ProcessPool
+def cap_threads(cfg):
+    """Before the theory code is first loaded in this process: an in-process evaluation (workers = 0)
+    uses the same OpenMP thread count as a worker process or an MPI rank would (`evaluate.threads_for`),
+    so a chain is identical bit for bit however its points were computed."""
+    from .evaluate import set_threads, threads_for
+    if cfg.sampling.workers == 0:
+        set_threads(threads_for(1, cfg.sampling.threads_per_worker))
+
+
+def make_evaluator(cfg, posterior, early=None):
+    from .evaluate import InProcess, ProcessPool, never
     from .mpi import world_size
+    stop = early.is_set if early is not None else never
     if world_size() > 1:
         from .mpi import MPIEvaluator
-        return MPIEvaluator(cfg, len(posterior.blob_names))
-    if cfg.sampling.workers == 0:
-        return InProcess(posterior)
-    return ProcessPool(cfg, cfg.sampling.workers, len(posterior.blob_names), cfg.sampling.threads_per_worker)
+        ev = MPIEvaluator(cfg, len(posterior.blob_names))
+    elif cfg.sampling.workers == 0:
+        ev = InProcess(posterior)
+    else:
+        ev = ProcessPool(cfg, cfg.sampling.workers, len(posterior.blob_names), cfg.sampling.threads_per_worker,
+                         should_stop=stop)
+    ev.should_stop = stop
+    return ev
 
 
 def _check_writable_dir(path: Path):
@@ -91,22 +106,39 @@ def _report(outcome, chain_path):
                  "not converged — extend it with `infer resume %s --steps N`", outcome.steps, why, chain_path)
 
 
-def _drive(cfg, store, posterior, state, start_event, clock):
+class _EarlySignals:
+    """SIGTERM/SIGINT before the driver takes over (start-up, starting ball, worker start): remember the
+    signal so that evaluators abandon their work and the command exits 75 like a paused run."""
+
+    def __init__(self):
+        self.signal: str | None = None
+
+    def __enter__(self):
+        self._old = {s: signal.signal(s, self._handler) for s in (signal.SIGTERM, signal.SIGINT)}
+        return self
+
+    def _handler(self, signum, frame):
+        self.signal = signal.Signals(signum).name
+
+    def is_set(self) -> bool:
+        return self.signal is not None
+
+    def __exit__(self, *exc):
+        for s, h in self._old.items():
+            signal.signal(s, h)
+
+
+def _paused_before_start(early, what):
+    log.info("stopped by %s %s; the chain is unchanged (exit 75: run the same command again)",
+             early.signal or "a signal", what)
+    return EXIT_PAUSED
+
+
+def _drive(cfg, store, evaluator, state, start_event, clock, early):
     from .sampler import Driver
-    from .evaluate import Interrupted
-    from .mpi import is_root
-    evaluator = None
-    try:
-        evaluator = make_evaluator(cfg, posterior)
-        driver = Driver(cfg, store, evaluator, state)
-        if state is None:
-            raise AssertionError
-        outcome = driver.run(cfg.sampling.steps, cfg.stopping.time_limit, clock, start_event)
-    except Interrupted:
-        raise UserError("stopped by a signal while starting the workers; nothing was written") from None
-    finally:
-        if evaluator is not None:
-            evaluator.close()
+    driver = Driver(cfg, store, evaluator, state)
+    driver.stop_requested = early.signal           # a signal during start-up pauses at once
+    outcome = driver.run(cfg.sampling.steps, cfg.stopping.time_limit, clock, start_event)
     _report(outcome, store.path)
     if driver.rejections:
         log.info("points given ln p = -inf, by reason: %s",
@@ -121,14 +153,17 @@ def cmd_run(args) -> int:
     from .posterior import Posterior
     from .sampler import event, starting_ball
     from .store import ChainStore
-    clock = time.monotonic()
+    from .evaluate import Interrupted
+    from .sampler import process_age
+    clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     cfg = _override(config.load(args.config), args)
     if args.chain:
         cfg = _replace_paths(cfg, args.chain)
     chain = Path(cfg.chain_path)
     _check_writable_dir(chain)
+    cap_threads(cfg)
     posterior = Posterior(cfg)                       # validates dataset, theory and parameters first
-    with ChainLock(str(chain)):
+    with _EarlySignals() as early, ChainLock(str(chain)):
         store = ChainStore(str(chain))
         store.remove_strays()
         if chain.exists():
@@ -138,15 +173,21 @@ def cmd_run(args) -> int:
             aside = chain.with_name(chain.name + time.strftime(".replaced-%Y%m%d-%H%M%S"))
             os.replace(chain, aside)
             log.info("set the existing chain aside as %s", aside)
-        from .evaluate import InProcess
         log.info("run '%s': %d sampled parameters, %d bands (%s), %d ensembles × %d walkers, up to %d steps",
                  cfg.name, len(posterior.names), posterior.like.n, "/".join(posterior.like.kinds),
                  cfg.sampling.ensembles, cfg.sampling.walkers, cfg.sampling.steps)
-        evaluator = make_evaluator(cfg, posterior)
+        evaluator = None
         try:
+            evaluator = make_evaluator(cfg, posterior, early)
             start, rng = starting_ball(cfg, evaluator, len(posterior.blob_names))
-        finally:
-            evaluator.close()
+        except Interrupted:
+            if evaluator is not None:
+                evaluator.close()
+            return _paused_before_start(early, "before the first checkpoint (no chain file was written)")
+        except BaseException:
+            if evaluator is not None:
+                evaluator.close()
+            raise
         provenance = {
             "config_text": cfg.text, "config_path": cfg.path, "run_name": cfg.name, "seed": cfg.seed,
             "dataset_file": cfg.dataset["file"], "dataset_sha256": posterior.data.sha256,
@@ -158,8 +199,11 @@ def cmd_run(args) -> int:
                      bounds=posterior.priors.bounds, ensembles=cfg.sampling.ensembles,
                      walkers=cfg.sampling.walkers, start=start, rng=rng, provenance=provenance)
         log.info("chain file: %s", chain)
-        state = store.read()
-        code = _drive(cfg, store, posterior, state, event("start", steps=0, workers=cfg.sampling.workers), clock)
+        try:
+            code = _drive(cfg, store, evaluator, store.read(), event("start", steps=0, workers=cfg.sampling.workers),
+                          clock, early)
+        finally:
+            evaluator.close()
     return _maybe_summarize(args, chain, code)
 
 
@@ -196,11 +240,13 @@ def cmd_resume(args) -> int:
     from .posterior import Posterior
     from .sampler import event
     from .store import ChainStore
-    clock = time.monotonic()
+    from .evaluate import Interrupted
+    from .sampler import process_age
+    clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     chain = Path(args.chain).resolve()
     if not chain.exists():
         raise UserError(f"{args.chain}: no such chain file")
-    with ChainLock(str(chain)):
+    with _EarlySignals() as early, ChainLock(str(chain)):
         store = ChainStore(str(chain))
         store.remove_strays()
         state = store.read()
@@ -220,6 +266,7 @@ def cmd_resume(args) -> int:
         for flag, val in (("steps", args.steps), ("workers", args.workers), ("time_limit", args.time_limit)):
             if val is not None:
                 changes.append(f"--{flag.replace('_', '-')} {val}")
+        cap_threads(cfg)
         posterior = Posterior(cfg)
         if posterior.data.sha256 != state.provenance.get("dataset_sha256"):
             raise UserError(f"refusing to resume {args.chain}: the dataset {cfg.dataset['file']} has changed "
@@ -230,27 +277,29 @@ def cmd_resume(args) -> int:
             return EXIT_OK
         log.info("resuming %s at step %d towards %d%s", chain, state.steps_done, cfg.sampling.steps,
                  f" (changes: {'; '.join(changes)})" if changes else "")
-        code = _drive(cfg, store, posterior, state,
-                      event("resume", steps=state.steps_done, changes=changes), clock)
+        try:
+            evaluator = make_evaluator(cfg, posterior, early)
+        except Interrupted:
+            return _paused_before_start(early, "while the workers started")
+        try:
+            code = _drive(cfg, store, evaluator, state, event("resume", steps=state.steps_done, changes=changes),
+                          clock, early)
+        finally:
+            evaluator.close()
     return _maybe_summarize(args, chain, code)
 
 
 def cmd_status(args) -> int:
     from . import convergence
     from .diagnostics import acceptance_fraction
-    from .lock import _read
+    from .lock import is_locked, read_holder
     from .store import ChainStore
     state = ChainStore(args.chain).read()
     cfg = stored_config(state)
     s = state.samples
     E, W = s.position.shape[1:3] if s.steps else (0, 0)
     print(f"chain     {os.path.abspath(args.chain)}")
-    lockfile = args.chain + ".lock"
-    holder = {}
-    if os.path.exists(lockfile):
-        fd = os.open(lockfile, os.O_RDONLY)
-        holder = _read(fd)
-        os.close(fd)
+    holder = read_holder(args.chain) if is_locked(args.chain) else {}
     if holder:
         print(f"writer    process {holder.get('pid')} on {holder.get('host')} since {holder.get('started')}")
     print(f"run       {state.provenance.get('run_name')}  (dataset {os.path.basename(state.provenance.get('dataset_file', ''))})")

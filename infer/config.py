@@ -35,6 +35,8 @@ MOVES = ("de-snooker", "stretch", "de")
 #: Keys whose change alters the posterior or the algorithm; refused on resume (see `posterior_diff`).
 FROZEN_PREFIXES = ("dataset.", "theory.", "parameters.", "sampling.walkers", "sampling.ensembles",
                    "sampling.moves")
+#: Theory keys that change speed only, never a prediction (the template model's simulated cost).
+RUN_CONTROL_THEORY_KEYS = ("theory.delay_seconds",)
 #: Keys under [parameters] that only change the starting ball or labels, never the posterior.
 COSMETIC_PARAM_KEYS = ("guess", "spread", "tex")
 
@@ -369,7 +371,8 @@ def diff(old: Config, new: Config) -> tuple[list[str], list[str]]:
         if va == vb:
             continue
         line = f"{key}: {va!r} → {vb!r}"
-        cosmetic = key.startswith("parameters.") and key.split(".")[2] in COSMETIC_PARAM_KEYS
+        cosmetic = (key.startswith("parameters.") and key.split(".")[2] in COSMETIC_PARAM_KEYS) or \
+            key in RUN_CONTROL_THEORY_KEYS
         if key.startswith(FROZEN_PREFIXES) and not cosmetic:
             refused.append(line)
         else:

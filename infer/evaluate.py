@@ -12,6 +12,13 @@ it gets ln p = −∞ with reason ``theory-process-died`` (its parameters are lo
 replaces it. Workers build their own `Posterior` from the run file once, so only a point vector crosses
 the pipe per call. Each worker's threads are capped (OMP_NUM_THREADS etc. set before the theory code is
 imported) so that workers × threads fits the cores.
+
+Stopping: every evaluator polls ``should_stop`` (set by the driver on SIGTERM/SIGINT or when the wall-time
+budget runs out) and raises `Interrupted`, abandoning the unfinished step: the pool polls every 0.2 s
+while it waits and kills the workers still busy, so a 20-minute theory call never delays a pause;
+`InProcess` marks the span of each posterior call as interruptible (``busy``) so that the driver's signal
+handler may raise `Interrupted` inside it (a Python-level wait such as a sleep ends at once; a C or
+Fortran call ends first — use workers ≥ 1 for slow Boltzmann codes).
 """
 from __future__ import annotations
 
@@ -20,7 +27,6 @@ import math
 import multiprocessing as mp
 import os
 import signal
-import time
 from multiprocessing.connection import wait
 
 import numpy as np
@@ -48,9 +54,12 @@ def set_threads(n: int) -> None:
 
 
 def threads_for(workers: int, requested: int = 0) -> int:
-    if requested:
-        return requested
-    return max(1, (os.cpu_count() or 1) // max(1, workers))
+    """OpenMP threads per evaluation: ``[sampling] threads_per_worker``, else 1 — never derived from the
+    worker count, because CAMB's spectra differ in the last bits between thread counts (measured: up to
+    4e-13 relative between 1 and 2 threads, identical run to run at a fixed count), and a chain must not
+    depend on how many workers or MPI ranks computed it. Parallelise with processes instead (see
+    tests/bench_parallel.py for the measured efficiency of both)."""
+    return requested or 1
 
 
 class Evaluator:
@@ -77,6 +86,7 @@ class InProcess(Evaluator):
     def __init__(self, posterior):
         super().__init__(len(posterior.blob_names))
         self.posterior = posterior
+        self.busy = False           # True only while a posterior call runs: the signal handler may interrupt it
 
     def evaluate(self, points):
         n = len(points)
@@ -84,28 +94,44 @@ class InProcess(Evaluator):
         for i, x in enumerate(points):
             if self.should_stop():
                 raise Interrupted
-            lp[i], blobs[i], reasons[i] = self.posterior(x)
+            self.busy = True
+            try:
+                lp[i], blobs[i], reasons[i] = self.posterior(x)
+            finally:
+                self.busy = False
         return lp, blobs, reasons
 
 
 def _worker_main(conn, cfg, threads):
     """Entry point of a worker process: build the posterior once, then evaluate points until EOF."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)   # the driver decides when workers stop
-    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    # The driver decides when workers stop (it kills them): a scheduler's SIGTERM or a Ctrl-C sent to the
+    # whole process group must not look like a theory-code crash and cost a point.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
     set_threads(threads)
     from .posterior import Posterior
     try:
         post = Posterior(cfg)
     except Exception as err:  # reported to the driver as one line
-        conn.send(("setup-error", f"{err}"))
+        _send(conn, ("setup-error", f"{err}"))
         return
-    conn.send(("ready", None))
+    if not _send(conn, ("ready", None)):
+        return
     while True:
         try:
             x = conn.recv()
         except (EOFError, OSError):
             return                                   # the driver has gone: leave quietly
-        conn.send(post(x))
+        if not _send(conn, post(x)):
+            return
+
+
+def _send(conn, message) -> bool:
+    try:
+        conn.send(message)
+        return True
+    except OSError:                                  # broken pipe: the driver has gone
+        return False
 
 
 class _Worker:
@@ -122,13 +148,16 @@ class _Worker:
             self.proc.kill()
         self.proc.join(timeout=5)
         self.conn.close()
+        self.task = None
+        self.ready = False
 
 
 class ProcessPool(Evaluator):
     """``workers`` isolated worker processes (spawned, so no state leaks from the driver)."""
 
-    def __init__(self, cfg, workers: int, blob_size: int, threads: int = 0):
+    def __init__(self, cfg, workers: int, blob_size: int, threads: int = 0, should_stop=never):
         super().__init__(blob_size)
+        self.should_stop = should_stop          # polled while workers start (a signal during start-up)
         self.cfg = cfg
         self.threads = threads_for(workers, threads)
         self.ctx = mp.get_context("spawn")
@@ -155,7 +184,9 @@ class ProcessPool(Evaluator):
                 if w.conn.poll():
                     continue
                 self.close()
-                raise RuntimeError(f"a worker process died while starting (exit code {w.proc.exitcode})")
+                raise UserError(f"a worker process died while starting (exit code {w.proc.exitcode}): the theory "
+                                "code could not be set up in a fresh process; run once with --workers 0 to see "
+                                "its error")
             if self.should_stop():
                 self.close()
                 raise Interrupted
@@ -166,6 +197,20 @@ class ProcessPool(Evaluator):
         self.replaced += 1
         self._await_ready(self.workers[i])
 
+    def _died(self, w, points, reasons):
+        code = w.proc.exitcode
+        how = f"signal {-code}" if code is not None and code < 0 else f"exit code {code}"
+        reasons[w.task] = DIED
+        self.failures.append((points[w.task].tolist(), how))
+        log.warning("the theory process died (%s) at %s; that point gets ln p = -inf and the "
+                    "worker is replaced", how, np.array2string(points[w.task], precision=6))
+
+    def _abandon(self, busy):
+        """Stop mid-step: kill the workers holding points (their results would be stale); they are
+        replaced when the pool is next used."""
+        for w in busy.values():
+            w.kill()
+
     def evaluate(self, points):
         points = np.asarray(points, float)
         n = len(points)
@@ -175,10 +220,23 @@ class ProcessPool(Evaluator):
         while todo or busy:
             for i, w in enumerate(self.workers):
                 if w.task is None and todo:
+                    if not w.ready or not w.proc.is_alive():      # killed while idle, or abandoned earlier
+                        if self.should_stop():
+                            self._abandon(busy)
+                            raise Interrupted
+                        self._replace(i)
+                        w = self.workers[i]
                     w.task = todo.pop()
-                    w.conn.send(points[w.task])
+                    try:
+                        w.conn.send(points[w.task])
+                    except OSError:                               # died between calls: retry elsewhere
+                        todo.append(w.task)
+                        w.task = None
+                        self._replace(i)
+                        continue
                     busy[i] = w
             if self.should_stop():
+                self._abandon(busy)
                 raise Interrupted
             handles = [w.conn for w in busy.values()] + [w.proc.sentinel for w in busy.values()]
             ready = wait(handles, timeout=0.2)
@@ -194,12 +252,10 @@ class ProcessPool(Evaluator):
                     w.task = None
                     del busy[i]
                 elif not w.proc.is_alive():
-                    code = w.proc.exitcode
-                    how = f"signal {-code}" if code is not None and code < 0 else f"exit code {code}"
-                    reasons[w.task] = DIED
-                    self.failures.append((points[w.task].tolist(), how))
-                    log.warning("the theory process died (%s) at %s; that point gets ln p = -inf and the "
-                                "worker is replaced", how, np.array2string(points[w.task], precision=6))
+                    if self.should_stop():         # e.g. a signal to the whole process group: not a crash
+                        self._abandon(busy)
+                        raise Interrupted
+                    self._died(w, points, reasons)
                     del busy[i]
                     self._replace(i)
         return lp, blobs, reasons

@@ -1,147 +1,320 @@
 """MPI: rank 0 drives the sampler and owns the chain file; every other rank evaluates posterior points.
 
-Points are handed out one at a time to whichever rank is idle (dynamic load balancing, since theory
-calls vary in cost) and results are stored by point index, so the chain does not depend on the number
-of ranks or on which rank computed what. Non-root ranks ignore SIGINT/SIGTERM: the scheduler's signal is
-handled by rank 0, which checkpoints and then releases the others. Each rank still runs its theory code
-in an isolated worker process when ``[sampling] workers`` ≥ 1, so a Boltzmann-code abort costs one point,
-not the MPI job.
+Message passing with mpi4py (Dalcin et al. 2011, Adv. Water Resour. 34, 1124) in a manager–worker
+pattern. Rank 0 opens an evaluation *session* by sending the validated run settings to every rank; each
+rank builds its own `Posterior` from them (so only a parameter vector and a result cross the network per
+point) and reports ready or a one-line error. Points are then handed out one at a time to whichever rank
+is idle (dynamic load balancing, since Boltzmann-code calls vary in cost across parameter space) and
+results are placed by point index, never by arrival order: the chain is the same value for value on any
+number of ranks, and the same as a serial run or a local process pool of any size.
 
-MPI is detected from the launcher's environment (MPICH/Hydra ``PMI_SIZE``, Open MPI
-``OMPI_COMM_WORLD_SIZE``, PMIx ``PMIX_SIZE``); mpi4py is imported only then (Dalcin et al. 2011,
-Adv. Water Resour. 34, 1124).
+Assumptions and choices:
+
+* waiting ranks test a posted receive with a short, growing sleep (at most 5 ms) instead of MPI's
+  blocking receive, which MPI libraries implement as a busy loop that burns a core per idle rank (and
+  starves the rank's own theory process when cores are shared);
+* non-root ranks ignore SIGINT/SIGTERM: a scheduler signal (MPICH's ``mpiexec`` forwards it to every
+  rank's process group) is handled by rank 0 alone, which abandons the unfinished step, writes its
+  checkpoint and only then collects the points still in flight and releases the other ranks, so the run
+  exits with 75 and resumes exactly;
+* with ``[sampling] workers`` ≥ 1 every rank evaluates in one isolated worker process
+  (`evaluate.ProcessPool`), so a Boltzmann-code abort costs one point, not the MPI job; ``workers = 0``
+  evaluates inside the rank (slightly less overhead, no isolation);
+* OpenMP threads per evaluating rank: ``[sampling] threads_per_worker``, else 1 (`evaluate.threads_for`),
+  the same count a serial run or a local worker uses, never derived from the number of ranks: CAMB's
+  spectra differ in the last bits between thread counts, and the chain must not depend on the rank
+  count. Rank 0 warns when the evaluating ranks × threads on a node exceed the cores of their CPU set
+  (oversubscription); rank 0 itself is not counted, it idles while the others evaluate.
+
+MPI is detected from the launcher's environment (MPICH/Hydra and Slurm PMI ``PMI_RANK``/``PMI_SIZE``,
+Open MPI ``OMPI_COMM_WORLD_*``, PMIx ``PMIX_RANK``); mpi4py is imported only then, so a serial run never
+initialises MPI. ``mpiexec -n 1`` is an ordinary serial run.
 """
 from __future__ import annotations
 
+import logging
 import math
 import os
 import signal
+import socket
 import time
 
 import numpy as np
 
-from .errors import UserError
-from .evaluate import Evaluator, InProcess, Interrupted, ProcessPool
+from .errors import EXIT_OK, EXIT_USAGE, UserError
+from .evaluate import Evaluator, InProcess, Interrupted, ProcessPool, set_threads, threads_for
 
-TAG_POINT, TAG_RESULT, TAG_DONE = 11, 12, 13
-_SIZE_VARS = ("PMI_SIZE", "OMPI_COMM_WORLD_SIZE", "PMIX_SIZE", "MPI_LOCALNRANKS")
+log = logging.getLogger("infer")
+
+# Message tags. Rank 0 → evaluators: a session opens (header, then the run settings), a point, the
+# session closes, the run ends. Evaluators → rank 0: ready (None or a one-line error), a result.
+TAG_OPEN, TAG_SETTINGS, TAG_POINT, TAG_CLOSE, TAG_EXIT = 21, 22, 23, 24, 25
+TAG_READY, TAG_RESULT = 31, 32
+_SIZE_VARS = ("PMI_SIZE", "OMPI_COMM_WORLD_SIZE", "PMIX_SIZE")
 _RANK_VARS = ("PMI_RANK", "OMPI_COMM_WORLD_RANK", "PMIX_RANK")
+MPI_COMMANDS = ("run", "resume")        # the commands that use the evaluating ranks
+_MAX_SLEEP = 0.005                      # longest sleep between tests of a pending receive (s)
+_BUF = 1 << 16                          # receive buffer of the small messages (bytes, pickled)
+
+_state: dict = {}                       # "comm", "layout" (host and CPU set per rank), "announced"
+
+
+# -- detection and set-up --------------------------------------------------------------------------------
+def _env_int(names):
+    for var in names:
+        if os.environ.get(var, "").isdigit():
+            return int(os.environ[var])
+    return None
 
 
 def world_size() -> int:
-    for var in _SIZE_VARS:
-        if os.environ.get(var, "").isdigit():
-            return int(os.environ[var])
+    """Number of MPI ranks this process was launched with (1 outside an MPI launcher)."""
+    size = _env_int(_SIZE_VARS)
+    if size is not None:
+        return size
+    if _env_int(_RANK_VARS) is not None:          # a launcher that exports the rank only
+        return _comm().Get_size()
     return 1
 
 
 def is_root() -> bool:
-    for var in _RANK_VARS:
-        if os.environ.get(var, "").isdigit():
-            return int(os.environ[var]) == 0
-    return True
+    rank = _env_int(_RANK_VARS)
+    return rank is None or rank == 0
 
 
 def _comm():
-    try:
-        from mpi4py import MPI
-    except ImportError:
-        raise UserError("running under an MPI launcher but mpi4py is not installed: "
-                        "pip install \"infer[mpi]\" (installs mpi4py and an MPI runtime)") from None
-    return MPI.COMM_WORLD
+    if "comm" not in _state:
+        try:
+            from mpi4py import MPI
+        except ImportError:
+            raise UserError("running under an MPI launcher but mpi4py is not installed: "
+                            "pip install \"infer[mpi]\" (installs mpi4py and an MPI runtime)") from None
+        _state["comm"] = MPI.COMM_WORLD
+    return _state["comm"]
 
 
+def start():
+    """Every rank, at the start of ``run``/``resume``: initialise MPI and share where each rank runs."""
+    comm = _comm()
+    if "layout" not in _state:
+        try:
+            cpus = tuple(sorted(os.sched_getaffinity(0)))
+        except (AttributeError, OSError):
+            cpus = tuple(range(os.cpu_count() or 1))
+        _state["layout"] = comm.allgather((socket.gethostname(), cpus))
+    return comm
+
+
+def oversubscribed(threads: int) -> list[str]:
+    """Nodes where the evaluating ranks × ``threads`` exceed the cores of the CPU set they share."""
+    groups: dict = {}
+    for r, (host, cpus) in enumerate(_state["layout"]):
+        if r != 0:
+            groups.setdefault((host, cpus), []).append(r)
+
+    def n(k, word):
+        return f"{k} {word}{'s' if k > 1 else ''}"
+    return [f"{n(len(ranks), 'rank')} × {n(threads, 'thread')} on {n(len(cpus), 'core')} of {host}"
+            for (host, cpus), ranks in sorted(groups.items()) if len(ranks) * threads > len(cpus)]
+
+
+def _probe_wait(comm, source, tag, status) -> None:
+    """Wait for a message without receiving it; for the rare, possibly large ones (settings, ready)."""
+    delay = 2e-5
+    while not comm.Iprobe(source=source, tag=tag, status=status):
+        time.sleep(delay)
+        delay = min(2 * delay, _MAX_SLEEP)
+
+
+class _Inbox:
+    """A posted receive for the small, frequent messages (points, results), tested with a growing sleep.
+
+    A posted receive lets the MPI library deliver straight into it; probing alone needed many progress
+    calls per message with the PyPI MPICH here (12 ms against 0.6 ms per round trip). Every message on
+    this path pickles to far less than ``_BUF`` bytes; the run settings travel separately.
+    """
+
+    def __init__(self, comm, source, tag):
+        self.comm, self.source, self.tag = comm, source, tag
+        self.buf = bytearray(_BUF)
+        self.req = None
+
+    def get(self, status, stop=None):
+        """``(True, message)`` (``status`` gives source and tag), or ``(False, None)`` when ``stop()``
+        became true first; a receive left posted then is completed by the next call."""
+        if self.req is None:
+            self.req = self.comm.irecv(self.buf, source=self.source, tag=self.tag)
+        delay = 2e-5
+        while True:
+            done, msg = self.req.test(status=status)
+            if done:
+                self.req = None
+                return True, msg
+            if stop is not None and stop():
+                return False, None
+            time.sleep(delay)
+            delay = min(2 * delay, _MAX_SLEEP)
+
+
+# -- rank 0 ----------------------------------------------------------------------------------------------
 class MPIEvaluator(Evaluator):
-    """Rank 0's view: sends points to ranks 1 … N−1 and gathers results in point order."""
+    """Rank 0's view: sends points to ranks 1 … N−1 and places their results by point index."""
 
     def __init__(self, cfg, blob_size: int):
         super().__init__(blob_size)
-        self.comm = _comm()
+        from mpi4py import MPI
+        self.MPI = MPI
+        self.comm = start()
         self.ranks = list(range(1, self.comm.Get_size()))
         if not self.ranks:
             raise UserError("MPI run with a single rank: use at least 2 (rank 0 drives, the others evaluate)")
-        self.comm.bcast(cfg, root=0)
-        errors = self.comm.gather(None, root=0)
-        bad = [e for e in errors[1:] if e]
+        self.in_flight: dict[int, int] = {}            # rank → index of the point it holds
+        if "inbox" not in _state:
+            _state["inbox"] = _Inbox(self.comm, MPI.ANY_SOURCE, TAG_RESULT)
+        self.inbox = _state["inbox"]
+        for r in self.ranks:
+            self.comm.send(None, dest=r, tag=TAG_OPEN)
+            self.comm.send(cfg, dest=r, tag=TAG_SETTINGS)
+        errors = {}
+        status = MPI.Status()
+        for _ in self.ranks:
+            _probe_wait(self.comm, MPI.ANY_SOURCE, TAG_READY, status)
+            errors[status.Get_source()] = self.comm.recv(source=status.Get_source(), tag=TAG_READY)
+        bad = [errors[r] for r in sorted(errors) if errors[r]]
         if bad:
             self.close()
             raise UserError(bad[0])
+        self._announce(cfg)
+
+    def _announce(self, cfg):
+        if _state.get("announced"):
+            return
+        _state["announced"] = True
+        threads = threads_for(1, cfg.sampling.threads_per_worker)
+        hosts = len({host for host, _ in _state["layout"]})
+        n, half = len(self.ranks), cfg.sampling.walkers // 2
+        log.info("MPI: rank 0 drives, %d rank%s evaluate%s on %d node%s with %d OpenMP thread%s each, the "
+                 "theory in %s", n, "s" if n > 1 else "", "" if n > 1 else "s", hosts, "s" if hosts > 1 else "",
+                 threads, "" if threads == 1 else "s",
+                 "an isolated process per rank" if cfg.sampling.workers else "the ranks themselves")
+        over = oversubscribed(threads)
+        if over:
+            log.warning("MPI: more threads than cores (%s): the ranks slow each other down; use fewer ranks per "
+                        "node or a smaller [sampling] threads_per_worker", "; ".join(over))
+        if n > half:
+            log.warning("MPI: %d evaluating ranks but a posterior call has only walkers/2 = %d points: %d ranks "
+                        "always idle (use [sampling] walkers >= %d, or fewer ranks)", n, half, n - half, 2 * n)
+        elif half % n:
+            rounds = math.ceil(half / n)
+            log.info("MPI: the %d points of a posterior call take %d rounds on %d ranks, so %.0f %% of rank "
+                     "time idles (make walkers/2 a multiple of %d to avoid it)", half, rounds, n,
+                     100 * (1 - half / (rounds * n)), n)
 
     def evaluate(self, points):
-        from mpi4py import MPI
         points = np.asarray(points, float)
         n = len(points)
         lp, blobs, reasons = np.full(n, -math.inf), np.full((n, self.blob_size), np.nan), [None] * n
+        died, errors = {}, {}
         todo = list(range(n))[::-1]
-        idle = list(self.ranks)
-        out = 0
-        status = MPI.Status()
-        while todo or out:
+        idle = [r for r in self.ranks if r not in self.in_flight][::-1]
+        status = self.MPI.Status()
+        while todo or self.in_flight:
             while todo and idle:
-                i = todo.pop()
-                self.comm.send((i, points[i]), dest=idle.pop(), tag=TAG_POINT)
-                out += 1
-            while not self.comm.Iprobe(source=MPI.ANY_SOURCE, tag=TAG_RESULT, status=status):
-                if self.should_stop():
-                    self._drain(out)
-                    raise Interrupted
-                time.sleep(0.002)
-            i, r, died = self.comm.recv(source=status.Get_source(), tag=TAG_RESULT)
-            lp[i], blobs[i], reasons[i] = r
-            if died:
-                self.failures.append((points[i].tolist(), died))
-            idle.append(status.Get_source())
-            out -= 1
+                r, i = idle.pop(), todo.pop()
+                self.comm.send((i, points[i]), dest=r, tag=TAG_POINT)
+                self.in_flight[r] = i
+            got, msg = self.inbox.get(status, self.should_stop)
+            if not got:
+                raise Interrupted                     # close() collects what is still in flight
+            r = status.Get_source()
+            i, result, how, error = msg
+            del self.in_flight[r]
+            idle.append(r)
+            if error is not None:
+                errors[i] = f"MPI rank {r}: {error}"
+            else:
+                lp[i], blobs[i], reasons[i] = result
+                if how:
+                    died[i] = how
+        if errors:
+            raise RuntimeError(errors[min(errors)])
+        self.failures.extend((points[i].tolist(), died[i]) for i in sorted(died))   # point order, not arrival
         return lp, blobs, reasons
 
-    def _drain(self, out):
-        """Collect results still in flight so no rank is left blocked in a send."""
-        for _ in range(out):
-            self.comm.recv(source=self._any(), tag=TAG_RESULT)
-
-    def _any(self):
-        from mpi4py import MPI
-        return MPI.ANY_SOURCE
-
     def close(self):
+        """Collect the results still in flight (after a signal or an error), then end the session."""
+        status = self.MPI.Status()
+        while self.in_flight:
+            self.inbox.get(status)
+            self.in_flight.pop(status.Get_source(), None)
         for r in self.ranks:
-            self.comm.send(None, dest=r, tag=TAG_DONE)
+            self.comm.send(None, dest=r, tag=TAG_CLOSE)
         self.ranks = []
 
 
 def shutdown() -> None:
-    """Rank 0, at exit: release the evaluating ranks."""
-    if world_size() > 1 and is_root():
-        _comm().bcast(None, root=0)
+    """Rank 0, at the end of ``run``/``resume`` whatever happened: release the evaluating ranks."""
+    comm = _state.get("comm")
+    if comm is None:
+        return
+    for r in range(1, comm.Get_size()):
+        comm.send(None, dest=r, tag=TAG_EXIT)
 
 
+# -- ranks 1 … N−1 ---------------------------------------------------------------------------------------
 def serve(args) -> int:
-    """Non-root ranks: evaluate points for each evaluator rank 0 opens, until released."""
-    from mpi4py import MPI
+    """Non-root ranks: evaluate points for every session rank 0 opens, until released."""
+    if args.command not in MPI_COMMANDS:
+        return EXIT_OK                      # other commands run on rank 0 alone (no duplicate output or files)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
-    comm = _comm()
-    while True:
-        cfg = comm.bcast(None, root=0)
-        if cfg is None:
-            return 0
-        from .posterior import Posterior
-        evaluator, error = None, None
-        try:
-            post = Posterior(cfg)
-            evaluator = (InProcess(post) if cfg.sampling.workers == 0 else
-                         ProcessPool(cfg, 1, len(post.blob_names), cfg.sampling.threads_per_worker or 1))
-        except Exception as err:  # reported by rank 0 as one line
-            error = str(err)
-        comm.gather(error, root=0)
-        status = MPI.Status()
+    try:
+        comm = start()
+    except UserError:
+        return EXIT_USAGE                   # rank 0 reports the same problem
+    from mpi4py import MPI
+    status = MPI.Status()
+    inbox = _Inbox(comm, 0, MPI.ANY_TAG)
+    evaluator, built_for = None, None
+    try:
         while True:
-            msg = comm.recv(source=0, tag=MPI.ANY_TAG, status=status)
-            if status.Get_tag() == TAG_DONE:
-                break
-            i, x = msg
-            lp, blobs, reasons = evaluator.evaluate(x[None, :])
-            died = evaluator.failures.pop()[1] if evaluator.failures else None
-            comm.send((i, (lp[0], blobs[0], reasons[0]), died), dest=0, tag=TAG_RESULT)
+            _, msg = inbox.get(status)
+            tag = status.Get_tag()
+            if tag == TAG_POINT:
+                i, x = msg
+                try:
+                    lp, blobs, reasons = evaluator.evaluate(x[None, :])
+                    how = evaluator.failures.pop()[1] if evaluator.failures else None
+                    reply = (i, (lp[0], blobs[0], reasons[0]), how, None)
+                except Exception as err:  # a bug: rank 0 stops with an internal error naming this rank
+                    reply = (i, None, None, f"{err.__class__.__name__}: {err}")
+                comm.send(reply, dest=0, tag=TAG_RESULT)
+            elif tag == TAG_OPEN:
+                cfg = comm.recv(source=0, tag=TAG_SETTINGS)
+                error = None
+                if cfg != built_for:        # the same run again (start, then sampling): keep the evaluator
+                    if evaluator is not None:
+                        evaluator.close()
+                    evaluator, built_for = None, None
+                    try:
+                        evaluator = _build(cfg, threads_for(1, cfg.sampling.threads_per_worker))
+                        built_for = cfg
+                    except Exception as err:  # reported by rank 0 as one line
+                        error = (str(err) if isinstance(err, UserError) else
+                                 f"MPI rank {comm.Get_rank()}: {err.__class__.__name__}: {err}")
+                comm.send(error, dest=0, tag=TAG_READY)
+            elif tag == TAG_EXIT:
+                return EXIT_OK
+            # TAG_CLOSE: nothing to do; the evaluator is kept for the next session
+    finally:
         if evaluator is not None:
             evaluator.close()
+
+
+def _build(cfg, threads: int) -> Evaluator:
+    from .posterior import Posterior
+    if cfg.sampling.workers == 0:
+        set_threads(threads)                # before the theory code is first imported in this rank
+        return InProcess(Posterior(cfg))
+    post = Posterior(cfg)                   # checks the run here too, so errors read the same on every rank
+    return ProcessPool(cfg, 1, len(post.blob_names), threads)

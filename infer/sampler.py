@@ -11,10 +11,16 @@ CAMCoS 5, 65). The driver adds what a days-long run needs:
   blobs and random state; a checkpoint stores those, so a resumed run continues value-for-value as if it
   had never stopped (the only randomness is each ensemble's `numpy.random.RandomState`, which emcee draws
   from; a step is a deterministic function of state + random state);
-* SIGTERM/SIGINT: the handler only sets a flag; evaluators poll it between points (and every 0.2 s while
-  waiting for workers), abandon the unfinished step and the driver writes a checkpoint of the completed
-  steps, then exits with `EXIT_PAUSED`; the wall-time budget does the same before it would be exceeded;
-* the stopping rule (`convergence.assess`) at fixed step multiples, recorded in the chain file.
+* SIGTERM/SIGINT: the handler sets a flag (and, for an in-process evaluation, interrupts the posterior
+  call it lands in); evaluators poll the flag between points and every 0.2 s while waiting for workers,
+  abandon the unfinished step, and the driver writes a checkpoint of the completed steps, then exits with
+  `EXIT_PAUSED`. The handlers stay installed until that checkpoint is on disk. The wall-time budget does
+  the same: no step is started that would not finish in time, and a step still running when only the
+  final checkpoint's time is left is abandoned (the budget counts from ``clock_start``; `process_age`
+  gives the start of the process, which is when a batch job's clock started);
+* the stopping rule (`convergence.assess`) at fixed step multiples, recorded in the chain file. A resumed
+  run re-assesses the chain as it was at the last check, so it stops at the same step as an uninterrupted
+  run would.
 
 The driver never knows cosmology: it sees a vector → (ln p, blob) map through an `evaluate.Evaluator`.
 """
@@ -103,11 +109,25 @@ class Driver:
         self.stop_requested: str | None = None
         self.rejections = dict(state.rejections)
         self.failures = list(state.failures)
-        evaluator.should_stop = lambda: self.stop_requested is not None
+        self.deadline: float | None = None       # monotonic time by which the last checkpoint must be done
+        self.reserve = 1.0                       # seconds kept for that checkpoint (grows with its cost)
+        self.time_up = False
+        self._step_rejections: dict = {}
+        evaluator.should_stop = self._should_stop
+
+    def _should_stop(self) -> bool:
+        if self.stop_requested is not None:
+            return True
+        if self.deadline is not None and time.monotonic() + self.reserve > self.deadline:
+            self.time_up = True
+            return True
+        return False
 
     # -- signals -------------------------------------------------------------------------------------
     def _handler(self, signum, frame):
         self.stop_requested = signal.Signals(signum).name
+        if getattr(self.evaluator, "busy", False):       # inside an in-process posterior call: abandon it
+            raise Interrupted
 
     def _install(self):
         self._old = {s: signal.signal(s, self._handler) for s in (signal.SIGTERM, signal.SIGINT)}
@@ -120,8 +140,8 @@ class Driver:
     def _log_prob(self, coords):
         lp, blobs, reasons = self.evaluator.evaluate(coords)
         for r in reasons:
-            if r is not None:
-                self.rejections[r] = self.rejections.get(r, 0) + 1
+            if r is not None:       # counted when the step completes (an abandoned step is redone)
+                self._step_rejections[r] = self._step_rejections.get(r, 0) + 1
         return list(zip(lp, blobs))
 
     def run(self, target_steps: int, time_limit: float | None = None, clock_start: float | None = None,
@@ -136,6 +156,8 @@ class Driver:
         rng = list(st.rng)
         samplers = [emcee.EnsembleSampler(W, P, self._log_prob, vectorize=True,
                                           moves=make_moves(cfg.sampling.moves)) for _ in range(E)]
+        for s in samplers:      # call ours directly: emcee's wrapper prints a traceback for every exception,
+            s.log_prob_fn = self._log_prob      # including the Interrupted that pauses a run on a signal
         gens = [s.sample(emcee.State(pos[e].copy(), log_prob=lp[e].copy(), blobs=blobs[e].copy(),
                                      random_state=rng[e]),
                          iterations=max(target_steps - done, 0), store=False, skip_initial_state_check=True)
@@ -146,6 +168,8 @@ class Driver:
         pending_events = [start_event] if start_event else []
         pending_conv = []
         last_ckpt_time, ckpt_cost, step_cost = time.monotonic(), 0.0, 0.0
+        if time_limit is not None:
+            self.deadline = t0 + time_limit
         prev = pos.copy()
         accept_hist = []
         verdict = None
@@ -170,6 +194,7 @@ class Driver:
             pending_conv.clear()
             last_ckpt_time = time.monotonic()
             ckpt_cost = max(ckpt_cost, last_ckpt_time - t)
+            self.reserve = 1.0 + 2.0 * ckpt_cost
 
         def current_samples():
             s = st.samples
@@ -177,29 +202,41 @@ class Driver:
             return type(s)(s.names, s.derived_names, full["position"], full["derived"], full["log_post"],
                            full["log_like"], s.tex, s.bounds, s.meta)
 
+        def paused():
+            if self.time_up and self.stop_requested is None:
+                return "time-limit", EXIT_PAUSED
+            return f"signal {self.stop_requested}", EXIT_PAUSED
+
         self._install()
         reason, code = "max-steps", EXIT_OK
         try:
-            if done > 0 and done % cfg.stopping.check_every == 0:
-                verdict = convergence.assess(current_samples(), cfg.stopping)
+            last_check = done - done % cfg.stopping.check_every
+            if last_check > 0:          # the verdict an uninterrupted run would hold at this step
+                verdict = convergence.assess(_prefix(st.samples, last_check), cfg.stopping)
             while done < target_steps:
                 if verdict is not None and verdict.met and done >= cfg.stopping.min_steps:
                     reason = "converged"
                     break
                 if self.stop_requested:
-                    reason, code = f"signal {self.stop_requested}", EXIT_PAUSED
+                    reason, code = paused()
                     break
                 if time_limit is not None:
                     elapsed = time.monotonic() - t0
                     if elapsed + 1.5 * step_cost + 2.0 * ckpt_cost + 1.0 > time_limit:
-                        reason, code = "time-limit", EXIT_PAUSED
+                        self.time_up = True
+                        reason, code = paused()
                         break
                 ts = time.monotonic()
+                self._step_rejections = {}
+                n_failed = len(self.evaluator.failures)
                 try:
                     new = [next(g) for g in gens]
                 except Interrupted:
-                    reason, code = f"signal {self.stop_requested}", EXIT_PAUSED
+                    del self.evaluator.failures[n_failed:]      # they belong to the abandoned step
+                    reason, code = paused()
                     break
+                for r, k in self._step_rejections.items():
+                    self.rejections[r] = self.rejections.get(r, 0) + k
                 step_cost = 0.8 * step_cost + 0.2 * (time.monotonic() - ts) if done > st.steps_done else \
                     time.monotonic() - ts
                 done += 1
@@ -228,11 +265,34 @@ class Driver:
             else:
                 if verdict is not None and verdict.met:
                     reason = "converged"
+            if self.stop_requested and code == EXIT_OK and reason != "converged":
+                reason, code = paused()
+            # Still under our signal handlers: a second SIGTERM/SIGINT cannot cut this checkpoint short.
+            flush(stop_reason=reason, events=[event("stop", steps=done, reason=reason)])
         finally:
             progress.close()
             self._restore()
-        if self.stop_requested and code == EXIT_OK:
-            reason, code = f"signal {self.stop_requested}", EXIT_PAUSED
-        flush(stop_reason=reason, events=[event("stop", steps=done, reason=reason)])
         self.state.steps_done = done
         return Outcome(code, reason, done, verdict)
+
+
+def process_age() -> float:
+    """Seconds since this process started (Linux /proc; 0 where unknown). A command's wall-time budget
+    should count from there (``clock_start = time.monotonic() - process_age()``): interpreter start-up
+    and imports, slow on some shared file systems, are the job's time too."""
+    try:
+        with open("/proc/self/stat") as fh:
+            start_ticks = int(fh.read().rsplit(")", 1)[1].split()[19])
+        with open("/proc/uptime") as fh:
+            uptime = float(fh.read().split()[0])
+        age = uptime - start_ticks / os.sysconf("SC_CLK_TCK")
+        return age if 0.0 <= age < 1e7 else 0.0
+    except (OSError, ValueError, IndexError):
+        return 0.0
+
+
+def _prefix(samples, n: int):
+    """The first ``n`` steps of ``samples``."""
+    return type(samples)(samples.names, samples.derived_names, samples.position[:n], samples.derived[:n],
+                         samples.log_post[:n], samples.log_like[:n], samples.tex, samples.bounds,
+                         dict(samples.meta))

@@ -1,21 +1,29 @@
 """The chain file: one HDF5 file per run that a hard kill at any instant cannot corrupt.
 
-Design (see the contributor guide for the alternatives we rejected): a published chain file is never
+Design (the contributor guide lists the alternatives we rejected): a published chain file is never
 modified in place. A checkpoint copies the current file to a temporary file in the same folder, appends
-the new steps there, fsyncs it and atomically renames it over the old name (POSIX ``rename``), then
-fsyncs the folder. So at every instant the name points at a complete file holding every step up to the
-last completed checkpoint, and nothing else: ``kill -9`` mid-step, mid-copy or mid-flush leaves the old
+the new steps there, flushes and fsyncs it and atomically renames it over the old name (POSIX ``rename``),
+then fsyncs the folder. So at every instant the name points at a complete file holding every step up to
+the last completed checkpoint, and nothing else: ``kill -9`` mid-step, mid-copy or mid-flush leaves the old
 file (plus a stray ``.NAME.h5.tmp-PID`` that the next writer removes). Readers in other processes open
 the file read-only and, because a rename never touches the inode they opened, always see one consistent
-checkpoint — the guarantee HDF5's single-writer/multiple-reader mode gives, without its restrictions
-(SWMR cannot add datasets or attributes after the writer starts, and a killed SWMR writer still leaves
-the superblock marked open). Every dataset carries HDF5's Fletcher-32 checksum filter, so a flipped byte
-in the data is detected on read; `salvage` recovers the longest intact prefix into a new file.
+checkpoint — what HDF5's single-writer/multiple-reader mode promises, without its restrictions (SWMR
+cannot add datasets or attributes after the writer starts, and a killed SWMR writer leaves the superblock
+marked open).
 
-The cost is one file copy per checkpoint (fast `copy_file_range`/`sendfile`; a 1 GB chain copies in about
-a second on local disk), which is why checkpoints are spaced in steps or minutes.
+Every byte that carries meaning is checksummed, so damage is reported, never read as data: the file uses
+the HDF5 1.10 object formats (``libver='v110'``: superblock, object headers with their attributes and the
+chunk indexes carry Jenkins lookup3 checksums), every dataset is chunked with the Fletcher-32 filter, text
+(JSON records, the run file) is stored as UTF-8 bytes in such datasets and strings as fixed-length
+values, never in HDF5's unchecksummed global heap. A run of zero-filled steps (what a lost write looks like
+after a host crash) is also refused. `infer.salvage` copies the longest intact prefix of a damaged file into
+a new one. Files need HDF5 ≥ 1.10 (2017) to read.
 
-Layout (names are the project's own; shapes use T steps, E ensembles, W walkers, P sampled, D derived):
+The cost is one file copy per checkpoint (``sendfile``; a 1 GB chain copies in about a second on a local
+disk), which is why checkpoints are spaced in steps or minutes.
+
+Layout, format_version 2 (names are the project's own; T steps, E ensembles, W walkers, P sampled, D derived;
+"text" = UTF-8 bytes in a (n,) uint8 dataset, JSON unless said otherwise):
 
 =============================  ==================  ==========================================================
 path                           shape / type        meaning
@@ -26,26 +34,32 @@ path                           shape / type        meaning
 ``/draws/log_post``            (T, E, W) f8        ln posterior
 ``/draws/log_like``            (T, E, W) f8        ln likelihood
 ``/draws/derived``             (T, E, W, D) f8     derived quantities (``/names/derived``)
-``/names/sampled``             (P,) str            sampled parameter names, vector order
-``/names/derived``             (D,) str            derived names
-``/names/tex``                 JSON str            LaTeX label per name
+``/names/sampled``             (P,) fixed str      sampled parameter names, vector order
+``/names/derived``             (D,) fixed str      derived names
+``/names/tex``                 text                LaTeX label per name
 ``/names/bounds``              (P, 2) f8           prior support per sampled parameter
 ``/start/position``            (E, W, P) f8        the starting ball (step 0), with ``log_post`` and ``blobs``
 ``/resume/rng_key`` etc.                           each ensemble's random state after step ``steps_done``
 ``/convergence/*``             (checks,) f8        step, rhat_max, ess_bulk_min, ess_tail_min, tau_max, met
-``/provenance`` attrs                              run-file text and path, dataset path and SHA-256, theory
-                                                   settings, package versions, host
-``/run/events``                JSON str            start / resume / stop records, allowed config changes
-``/run/rejections``            JSON str            count of −∞ points by reason
-``/run/failures``              JSON str            points whose theory process died, with how
+``/provenance/KEY``            text                run-file text and path, dataset path and SHA-256, theory
+                                                   settings, package versions, host (one JSON value each)
+``/run/events``                text                start / resume / stop / salvage records, allowed changes
+``/run/rejections``            text                count of −∞ points by reason
+``/run/failures``              text                points whose theory process died, with how
+``/run`` attrs                                     ``stop_reason`` of the last session
 =============================  ==================  ==========================================================
+
+Files of format_version 1 (variable-length strings, provenance as attributes) are still read.
 """
 from __future__ import annotations
 
+import gc
 import glob
 import json
 import os
+import re
 import shutil
+import sys
 import time
 from dataclasses import dataclass, field
 
@@ -57,9 +71,12 @@ from .errors import ChainFileError
 from .samples import Samples
 
 FORMAT = "infer-chain"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+LIBVER = ("v110", "v110")        # checksummed metadata; readable by HDF5 >= 1.10
 DRAWS = ("position", "log_post", "log_like", "derived")
 CONVERGENCE = ("step", "rhat_max", "ess_bulk_min", "ess_tail_min", "tau_max", "met")
+RNG_KEYS = ("rng_key", "rng_pos", "rng_has_gauss", "rng_gauss")
+TEXT_CHUNK = 4096
 
 
 @dataclass
@@ -92,18 +109,94 @@ def rng_to_arrays(states):
 
 
 def rng_from_arrays(g):
-    key, pos, hg, ga = (np.asarray(g[k][()]) for k in ("rng_key", "rng_pos", "rng_has_gauss", "rng_gauss"))
+    key, pos, hg, ga = (np.asarray(g[k][()]) for k in RNG_KEYS)
+    if key.shape != (len(pos), 624) or not len(pos) == len(hg) == len(ga):
+        raise ValueError(f"random states of inconsistent shapes {key.shape}, {pos.shape}")
     return [("MT19937", key[e].astype(np.uint32), int(pos[e]), int(hg[e]), float(ga[e])) for e in range(len(pos))]
 
 
-def _json(g, name, value):
+# -- checksummed storage of text and strings --------------------------------------------------------------
+def put_text(g, name: str, text: str) -> None:
+    """Store ``text`` as UTF-8 bytes in a resizable, Fletcher-32-checked dataset (rewritten only if changed)."""
+    data = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
     if name in g:
-        del g[name]
-    g.create_dataset(name, data=json.dumps(value))
+        ds = g[name]
+        if ds.dtype == np.uint8 and ds.ndim == 1:
+            if ds.shape[0] == len(data) and np.array_equal(ds[()], data):
+                return
+            ds.resize((len(data),))
+            if len(data):
+                ds[...] = data
+            return
+        del g[name]                                      # a format-1 variable-length string
+    chunk = int(min(TEXT_CHUNK, max(256, len(data))))
+    ds = g.create_dataset(name, shape=(len(data),), maxshape=(None,), dtype=np.uint8,
+                          chunks=(chunk,), fletcher32=True)
+    if len(data):
+        ds[...] = data
 
 
-def _strs(values):
-    return np.array([str(v) for v in values], dtype=h5py.string_dtype())
+def get_text(ds) -> str:
+    value = ds[()]
+    if isinstance(value, np.ndarray) and value.dtype == np.uint8:
+        return value.tobytes().decode("utf-8")
+    return value.decode("utf-8") if isinstance(value, bytes) else str(value)   # format 1
+
+
+def put_json(g, name, value) -> None:
+    put_text(g, name, json.dumps(value, sort_keys=True))
+
+
+def get_json(ds):
+    return json.loads(get_text(ds))
+
+
+def _fixed_strs(values):
+    enc = [str(v).encode("utf-8") for v in values]
+    n = max([len(e) for e in enc] + [1])
+    return np.array(enc, dtype=h5py.string_dtype("utf-8", n)).reshape(len(enc))
+
+
+def _strs_from(ds):
+    return tuple(s.decode("utf-8") if isinstance(s, bytes) else str(s) for s in ds[()])
+
+
+def attr_str(obj, key, default=None):
+    v = obj.attrs.get(key, default)
+    return v.decode("utf-8") if isinstance(v, bytes) else v
+
+
+def _bytes(s: str):
+    return np.bytes_(s.encode("utf-8"))
+
+
+def _checked(g, name, data, **kw):
+    """A small array dataset, chunked so that Fletcher-32 protects it."""
+    data = np.asarray(data)
+    shape = data.shape
+    chunks = tuple(max(1, n) for n in shape) if shape else None
+    if not shape:
+        data = data.reshape(1)
+        chunks = (1,)
+    maxshape = tuple(None if n == 0 else n for n in data.shape)
+    return g.create_dataset(name, data=data, chunks=chunks, maxshape=maxshape, fletcher32=True, **kw)
+
+
+def _fsync(path, directory=False):
+    fd = os.open(path, os.O_RDONLY | (os.O_DIRECTORY if directory else 0))
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def zero_steps(position, log_post) -> np.ndarray:
+    """Indices of steps whose positions and ln p are all exactly zero: lost writes, never a real step."""
+    if not len(log_post):
+        return np.zeros(0, dtype=int)
+    flat_p = position.reshape(len(position), -1)
+    flat_l = log_post.reshape(len(log_post), -1)
+    return np.flatnonzero(~flat_p.any(axis=1) & ~flat_l.any(axis=1))
 
 
 class ChainStore:
@@ -120,161 +213,294 @@ class ChainStore:
     def remove_strays(self) -> None:
         """Delete temporary files left by killed writers (call only while holding the lock)."""
         d, b = os.path.split(self.path)
-        for stray in glob.glob(os.path.join(d, f".{b}.tmp-*")):
+        for stray in glob.glob(os.path.join(glob.escape(d), f".{glob.escape(b)}.tmp-*")):
             try:
                 os.unlink(stray)
             except OSError:
                 pass
 
-    def _commit(self, mutate, create=False) -> None:
+    def _commit(self, mutate, verify, create=False) -> None:
+        """Copy → mutate the copy → flush → read back and verify → fsync → atomic rename → fsync the folder.
+
+        HDF5 reports some write failures only when it evicts a cached chunk, from an object's destructor,
+        where Python can merely print them ("Exception ignored in ..."): so the chunk cache is off (every
+        write reaches the file at once and fails there), such swallowed errors are collected and count
+        as a failure, and the copy is read back and compared with what was meant before it is published.
+        Any failure removes the copy and leaves the published file as it was; an I/O error (disk full,
+        read-only or vanished folder, quota) becomes one `ChainFileError` line."""
         tmp = self._tmp()
+        swallowed: list = []
+        old_hook = sys.unraisablehook
+
+        def hook(u):
+            if "h5py" in repr(u.object) or _errno_of(u.exc_value) is not None:
+                swallowed.append(u.exc_value)
+            else:
+                old_hook(u)
+
+        sys.unraisablehook = hook
         try:
             if not create:
                 shutil.copyfile(self.path, tmp)
-            with h5py.File(tmp, "w" if create else "r+", locking=False) as f:
+                try:
+                    shutil.copymode(self.path, tmp)
+                except OSError:
+                    pass
+            with h5py.File(tmp, "w" if create else "r+", locking=False, libver=LIBVER, rdcc_nbytes=0) as f:
                 mutate(f)
-            fd = os.open(tmp, os.O_RDONLY)
-            try:
-                os.fsync(fd)
-            finally:
-                os.close(fd)
+                f.flush()
+            gc.collect()                         # run any pending h5py destructors inside the guard
+            if swallowed:
+                raise _io_error(swallowed[0])
+            with h5py.File(tmp, "r", locking=False) as f:
+                verify(f)
+            if swallowed:
+                raise _io_error(swallowed[0])
+            _fsync(tmp)
             os.replace(tmp, self.path)
-            dfd = os.open(os.path.dirname(self.path), os.O_RDONLY)
-            try:
-                os.fsync(dfd)
-            finally:
-                os.close(dfd)
-        except OSError as err:
+            _fsync(os.path.dirname(self.path), directory=True)
+        except BaseException as err:
             try:
                 os.unlink(tmp)
             except OSError:
                 pass
-            what = getattr(err, "strerror", None) or str(err)
-            raise ChainFileError(f"{self.path}: cannot write the checkpoint ({what}); the file on disk still "
-                                 "holds the previous checkpoint") from None
+            if isinstance(err, _VerifyError):
+                raise ChainFileError(f"{self.path}: cannot write the checkpoint (the new copy did not read back "
+                                     f"as written: {err}); the file on disk still holds the previous "
+                                     "checkpoint") from None
+            if isinstance(err, Exception) and not isinstance(err, OSError) and _errno_of(err) is not None:
+                err = _io_error(err)
+            if not isinstance(err, OSError):
+                raise
+            code = _errno_of(err)
+            what = os.strerror(code) if code else (getattr(err, "strerror", None) or _short(err))
+            if create:
+                tail = "nothing was written"
+            elif os.path.exists(self.path):
+                tail = "the file on disk still holds the previous checkpoint"
+            else:
+                tail = "the chain file or its folder has disappeared"
+            raise ChainFileError(f"{self.path}: cannot write the checkpoint ({what}); {tail}") from None
+        finally:
+            sys.unraisablehook = old_hook
 
-    def create(self, *, names, derived_names, tex, bounds, ensembles, walkers, start, rng, provenance):
+    def create(self, *, names, derived_names, tex, bounds, ensembles, walkers, start, rng, provenance,
+               draws=None, events=None, rejections=None, failures=None, convergence=None,
+               stop_reason=None) -> None:
+        """Write a new chain file in one atomic commit: its metadata, starting ball and random states,
+        and (used by `infer.salvage`) optionally steps already taken, given as ``draws`` = dict of the
+        four arrays shaped (n, E, W, ...)."""
         P, D = len(names), len(derived_names)
         E, W = ensembles, walkers
         chunk = max(1, min(512, (1 << 18) // max(1, E * W * (P + D + 2) * 8)))
 
         def build(f):
-            f.attrs.update({"format": FORMAT, "format_version": FORMAT_VERSION, "steps_done": 0,
-                            "ensembles": E, "walkers": W, "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-                            "infer_version": __version__})
+            f.attrs.update({"format": _bytes(FORMAT), "format_version": FORMAT_VERSION, "steps_done": 0,
+                            "ensembles": E, "walkers": W,
+                            "created": _bytes(time.strftime("%Y-%m-%dT%H:%M:%S%z")),
+                            "infer_version": _bytes(__version__)})
             g = f.create_group("draws")
             for name, tail in (("position", (E, W, P)), ("log_post", (E, W)), ("log_like", (E, W)),
                                ("derived", (E, W, D))):
                 g.create_dataset(name, shape=(0,) + tail, maxshape=(None,) + tail, dtype="f8",
                                  chunks=(chunk,) + tail, fletcher32=True)
             n = f.create_group("names")
-            n.create_dataset("sampled", data=_strs(names))
-            n.create_dataset("derived", data=_strs(derived_names))
-            n.create_dataset("tex", data=json.dumps(tex))
-            n.create_dataset("bounds", data=np.array([bounds[k] for k in names], float).reshape(P, 2))
+            _checked(n, "sampled", _fixed_strs(names))
+            _checked(n, "derived", _fixed_strs(derived_names))
+            put_json(n, "tex", tex)
+            _checked(n, "bounds", np.array([bounds[k] for k in names], float).reshape(P, 2))
             s = f.create_group("start")
             for key in ("position", "log_post", "blobs"):
-                s.create_dataset(key, data=np.asarray(start[key], float), fletcher32=True)
+                _checked(s, key, np.asarray(start[key], float))
             r = f.create_group("resume")
             for key, arr in rng_to_arrays(rng).items():
-                r.create_dataset(key, data=arr, fletcher32=True)
+                _checked(r, key, arr)
             c = f.create_group("convergence")
             for key in CONVERGENCE:
-                c.create_dataset(key, shape=(0,), maxshape=(None,), dtype="f8", chunks=(256,))
+                c.create_dataset(key, shape=(0,), maxshape=(None,), dtype="f8", chunks=(256,), fletcher32=True)
             p = f.create_group("provenance")
             for key, val in provenance.items():
-                p.attrs[key] = val if isinstance(val, (str, int, float)) else json.dumps(val)
+                put_json(p, key, val.item() if isinstance(val, np.generic) else val)
             run = f.create_group("run")
-            _json(run, "events", [])
-            _json(run, "rejections", {})
-            _json(run, "failures", [])
+            put_json(run, "events", [])
+            put_json(run, "rejections", {})
+            put_json(run, "failures", [])
+            self._grow(f, d["position"], d["log_post"], d["log_like"], d["derived"], rng, convergence,
+                       events, rejections, failures, stop_reason)
 
-        os.makedirs(os.path.dirname(self.path), exist_ok=True)
-        self._commit(build, create=True)
+        d = draws or {k: np.empty((0,)) for k in DRAWS}
+
+        def verify(f):
+            _verify_tail(f, 0, d, rng)
+            for key in ("position", "log_post", "blobs"):
+                if not np.array_equal(f["start"][key][()], np.asarray(start[key], float), equal_nan=True):
+                    raise _VerifyError(f"/start/{key} differs")
+
+        try:
+            os.makedirs(os.path.dirname(self.path), exist_ok=True)
+        except OSError as err:
+            raise ChainFileError(f"{os.path.dirname(self.path)}: cannot create the folder ({err.strerror})") from None
+        self._commit(build, verify, create=True)
+
+    @staticmethod
+    def _grow(f, position, log_post, log_like, derived, rng, convergence, events, rejections, failures,
+              stop_reason):
+        n = len(position)
+        done = int(f.attrs["steps_done"])
+        g = f["draws"]
+        for name, arr in (("position", position), ("log_post", log_post), ("log_like", log_like),
+                          ("derived", derived)):
+            ds = g[name]
+            ds.resize(done + n, axis=0)
+            if n:
+                ds[done:done + n] = arr
+        for key, arr in rng_to_arrays(rng).items():
+            f["resume"][key][...] = arr
+        if convergence:
+            c = f["convergence"]
+            m = len(c["step"])
+            for key in CONVERGENCE:
+                c[key].resize(m + len(convergence), axis=0)
+                c[key][m:] = [row[key] for row in convergence]
+        run = f["run"]
+        if events:
+            put_json(run, "events", get_json(run["events"]) + list(events))
+        if rejections is not None:
+            put_json(run, "rejections", rejections)
+        if failures is not None:
+            put_json(run, "failures", failures)
+        if stop_reason is not None:
+            run.attrs["stop_reason"] = _bytes(stop_reason)
+        f.attrs["steps_done"] = done + n
 
     def append(self, *, position, log_post, log_like, derived, rng, convergence=None, events=None,
                rejections=None, failures=None, stop_reason=None) -> int:
         """Atomically add ``n`` steps (arrays shaped (n, E, W, ...)) and the state after them."""
-        n = len(position)
+        before = {}
 
         def grow(f):
-            done = int(f.attrs["steps_done"])
-            g = f["draws"]
-            for name, arr in (("position", position), ("log_post", log_post), ("log_like", log_like),
-                              ("derived", derived)):
-                ds = g[name]
-                ds.resize(done + n, axis=0)
-                if n:
-                    ds[done:done + n] = arr
-            for key, arr in rng_to_arrays(rng).items():
-                f["resume"][key][...] = arr
-            if convergence:
-                c = f["convergence"]
-                m = len(c["step"])
-                for key in CONVERGENCE:
-                    c[key].resize(m + len(convergence), axis=0)
-                    c[key][m:] = [row[key] for row in convergence]
-            run = f["run"]
-            if events:
-                _json(run, "events", json.loads(run["events"][()]) + list(events))
-            if rejections is not None:
-                _json(run, "rejections", rejections)
-            if failures is not None:
-                _json(run, "failures", failures)
-            if stop_reason is not None:
-                run.attrs["stop_reason"] = stop_reason
-            f.attrs["steps_done"] = done + n
+            before["done"] = int(f.attrs["steps_done"])
+            self._grow(f, position, log_post, log_like, derived, rng, convergence, events, rejections, failures,
+                       stop_reason)
 
-        self._commit(grow)
-        return n
+        new = {"position": position, "log_post": log_post, "log_like": log_like, "derived": derived}
+        self._commit(grow, lambda f: _verify_tail(f, before["done"], new, rng))
+        return len(position)
 
     # -- reading -------------------------------------------------------------------------------------
     def read(self, verify: bool = True) -> ChainState:
-        """Read the whole chain; ChainFileError naming the problem if it is not a sound chain file."""
+        """Read the whole chain; ChainFileError naming the problem if it is not a sound chain file.
+
+        ``verify`` also refuses zero-filled steps (lost writes)."""
         if not os.path.exists(self.path):
             raise ChainFileError(f"{self.path}: no such chain file")
+        if os.path.isdir(self.path):
+            raise ChainFileError(f"{self.path}: is a folder, not a chain file")
         try:
             f = h5py.File(self.path, "r", locking=False)
         except OSError as err:
             raise ChainFileError(f"{self.path}: damaged or not an HDF5 file ({_short(err)}); "
-                                 f"try `infer salvage {self.path} NEW.h5`") from None
+                                 f"{_salvage_hint(self.path)}") from None
         try:
             with f:
-                return self._read(f)
+                return self._read(f, verify)
         except ChainFileError:
             raise
-        except (OSError, KeyError, ValueError, TypeError) as err:
-            raise ChainFileError(f"{self.path}: damaged chain file ({_short(err)}); "
-                                 f"try `infer salvage {self.path} NEW.h5`") from None
+        except Exception as err:      # h5py reports damage as OSError, KeyError, ValueError, ...
+            raise ChainFileError(f"{self.path}: damaged chain file ({err.__class__.__name__}: {_short(err)}); "
+                                 f"{_salvage_hint(self.path)}") from None
 
-    def _read(self, f) -> ChainState:
-        if f.attrs.get("format") != FORMAT:
-            raise ChainFileError(f"{self.path}: not an infer chain file (format attribute is "
-                                 f"{f.attrs.get('format')!r})")
+    def _read(self, f, verify=True) -> ChainState:
+        fmt = attr_str(f, "format")
+        if fmt != FORMAT:
+            raise ChainFileError(f"{self.path}: not an infer chain file (format attribute is {fmt!r})")
         if int(f.attrs.get("format_version", -1)) > FORMAT_VERSION:
             raise ChainFileError(f"{self.path}: written by a newer infer (format_version "
                                  f"{f.attrs['format_version']}); upgrade infer to read it")
         T = int(f.attrs["steps_done"])
-        arrays = {k: f["draws"][k][()] for k in DRAWS}
-        for k, a in arrays.items():
-            if a.shape[0] != T:
-                raise ChainFileError(f"{self.path}: inconsistent chain: /draws/{k} has {a.shape[0]} steps, "
-                                     f"the file says {T}")
-        names = tuple(s.decode() if isinstance(s, bytes) else s for s in f["names/sampled"][()])
-        dnames = tuple(s.decode() if isinstance(s, bytes) else s for s in f["names/derived"][()])
+        E, W = int(f.attrs["ensembles"]), int(f.attrs["walkers"])
+        names = _strs_from(f["names/sampled"])
+        dnames = _strs_from(f["names/derived"])
+        P, D = len(names), len(dnames)
+        expect = {"position": (T, E, W, P), "log_post": (T, E, W), "log_like": (T, E, W), "derived": (T, E, W, D)}
+        arrays = {}
+        for k in DRAWS:
+            ds = f["draws"][k]
+            if ds.shape != expect[k]:
+                raise ChainFileError(f"{self.path}: inconsistent chain: /draws/{k} has shape {ds.shape}, "
+                                     f"expected {expect[k]} from the file's steps_done, ensembles, walkers "
+                                     f"and names; {_salvage_hint(self.path)}")
+            arrays[k] = ds[()]
+        if verify:
+            zeros = zero_steps(arrays["position"], arrays["log_post"])
+            if len(zeros):
+                raise ChainFileError(f"{self.path}: damaged chain file: step {zeros[0] + 1} is all zeros "
+                                     f"(a lost write); {_salvage_hint(self.path)}")
         bounds = {n: tuple(b) for n, b in zip(names, f["names/bounds"][()].tolist())}
-        tex = json.loads(f["names/tex"][()])
-        prov = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f["provenance"].attrs.items()}
+        tex = get_json(f["names/tex"])
+        prov_g = f["provenance"]
+        if len(prov_g):
+            prov = {k: get_json(prov_g[k]) for k in prov_g}
+        else:                                               # format 1: attributes
+            prov = {k: (v.decode() if isinstance(v, bytes) else v.item() if isinstance(v, np.generic) else v)
+                    for k, v in prov_g.attrs.items()}
         run = f["run"]
         samples = Samples(names, dnames, arrays["position"], arrays["derived"], arrays["log_post"],
                           arrays["log_like"], tex, bounds,
-                          {"chain": self.path, "stop_reason": run.attrs.get("stop_reason", "")})
+                          {"chain": self.path, "stop_reason": attr_str(run, "stop_reason", "") or ""})
         start = {k: f["start"][k][()] for k in ("position", "log_post", "blobs")}
+        if start["position"].shape != (E, W, P) or start["log_post"].shape != (E, W):
+            raise ChainFileError(f"{self.path}: inconsistent chain: /start has shape {start['position'].shape}, "
+                                 f"expected {(E, W, P)}")
+        rng = rng_from_arrays(f["resume"])
+        if len(rng) != E:
+            raise ChainFileError(f"{self.path}: inconsistent chain: {len(rng)} random states for {E} ensembles")
         conv = {k: f["convergence"][k][()] for k in CONVERGENCE}
-        return ChainState(samples, T, start, rng_from_arrays(f["resume"]), prov,
-                          json.loads(run["events"][()]), json.loads(run["rejections"][()]),
-                          json.loads(run["failures"][()]), conv)
+        if len({len(v) for v in conv.values()}) > 1:
+            raise ChainFileError(f"{self.path}: inconsistent chain: /convergence datasets differ in length")
+        return ChainState(samples, T, start, rng, prov, get_json(run["events"]), get_json(run["rejections"]),
+                          get_json(run["failures"]), conv)
+
+
+class _VerifyError(Exception):
+    pass
+
+
+def _verify_tail(f, done, draws, rng):
+    """The file holds ``done`` + n steps, ends with ``draws`` and has ``rng`` as its random states."""
+    n = len(draws["position"])
+    if int(f.attrs["steps_done"]) != done + n:
+        raise _VerifyError(f"steps_done is {int(f.attrs['steps_done'])}, expected {done + n}")
+    for k in DRAWS:
+        ds = f["draws"][k]
+        if ds.shape[0] != done + n:
+            raise _VerifyError(f"/draws/{k} has {ds.shape[0]} steps, expected {done + n}")
+        if n and not np.array_equal(ds[done:done + n], np.asarray(draws[k], float).reshape(ds[done:done + n].shape),
+                                    equal_nan=True):
+            raise _VerifyError(f"/draws/{k} differs")
+    for key, arr in rng_to_arrays(rng).items():
+        if not np.array_equal(f["resume"][key][()], arr):
+            raise _VerifyError(f"/resume/{key} differs")
+
+
+def _errno_of(err):
+    """The errno of an OSError, or one HDF5 embeds in its message ("errno = 28, ..."), else None."""
+    code = getattr(err, "errno", None)
+    if isinstance(code, int) and code:
+        return code
+    m = re.search(r"errno = (\d+)", str(err))
+    return int(m.group(1)) if m else None
+
+
+def _io_error(err) -> OSError:
+    code = _errno_of(err)
+    return OSError(code, os.strerror(code)) if code else OSError(_short(err))
+
+
+def _salvage_hint(path) -> str:
+    return f"copy its intact part into a new file with `infer salvage {path} NEW.h5`"
 
 
 def _short(err) -> str:
-    return str(err).splitlines()[0][:200]
+    text = str(err).strip()
+    return (text.splitlines()[0] if text else err.__class__.__name__)[:200]
