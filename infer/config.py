@@ -65,7 +65,7 @@ class Sampling:
     steps: int = 5000
     moves: str = "de-snooker"
     workers: int = 1
-    threads_per_worker: int = 0           # 0: cores // workers
+    threads_per_worker: int = 0           # 0: one thread (see evaluate.threads_for)
     checkpoint_steps: int = 50
     checkpoint_minutes: float = 10.0
     log_minutes: float = 1.0

@@ -235,7 +235,7 @@ def test_kestrel_spec():
     assert fiducial == {"omega_b": 0.0224, "omega_c": 0.120, "H0": 67.5, "ln_As_1e10": 3.05,
                         "n_s": 0.965, "tau": 0.055, "sum_mnu_eV": 0.06, "n_eff": 3.044}
     assert isinstance(options["seed"], int) and options["realise"] is True
-    assert options["output"].parent == KESTREL.parent
+    assert options["output"].parent == KESTREL.parent / "data"
 
 
 GOOD_SPEC = """
