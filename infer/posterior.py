@@ -39,7 +39,9 @@ class Posterior:
         self.fixed = cfg.fixed
         self._check_names()
         self.priors = PriorSet(cfg.sampled)
-        self.derived_names = tuple(self.theory.derived_names) + ("chi2",)
+        # A derived value that is also sampled (H0 or theta_star_100, say) would only repeat its input.
+        self._derived = tuple(n for n in self.theory.derived_names if n not in self.names)
+        self.derived_names = self._derived + ("chi2",)
         self.blob_names = ("log_like",) + self.derived_names
         self._nuisance = [n for n in NUISANCE if n in self.names or n in self.fixed]
         self._inputs = [n for n in self.theory.inputs if n in self.names or n in self.fixed]
@@ -80,7 +82,7 @@ class Posterior:
         if not math.isfinite(ll):
             return -math.inf, blob, "non-finite-likelihood"
         blob[0] = ll
-        blob[1:-1] = [spectra.derived[n] for n in self.theory.derived_names]
+        blob[1:-1] = [spectra.derived[n] for n in self._derived]
         blob[-1] = chi2
         return lp + ll, blob, None
 
