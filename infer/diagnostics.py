@@ -251,7 +251,7 @@ def ess_bulk(draws) -> float:
     -------
     float
         ESS of the pooled normal scores of the split chains; ``nan`` for fewer than
-        4 draws, non-finite input or when every chain is constant. Agrees with
+        8 draws per chain (split halves shorter than 4), non-finite input or when every chain is constant. Agrees with
         ``arviz.ess(draws, method="bulk")`` (which returns the draw count, not
         ``nan``, for a constant sequence, and a small number when all chains are
         constant at different values).
@@ -274,7 +274,7 @@ def ess_tail(draws) -> float:
     float
         min over q ∈ {5%, 95%} of the ESS of the split indicator I(θ ≤ θ_q), θ_q
         the pooled sample quantile (linear interpolation, Hyndman & Fan type 7).
-        ``nan`` for fewer than 4 draws, non-finite input or an indicator that is
+        ``nan`` for fewer than 8 draws per chain, non-finite input or an indicator that is
         constant within every split chain (heavy ties; every chain constant).
         Agrees with ``arviz.ess(draws, method="tail")``.
     """
