@@ -25,7 +25,6 @@ def test_driver_recovers_closed_form_posterior(write_config, quick_data):
     mean, cov = analytic_posterior(quick_data)
     sd = np.sqrt(np.diag(cov))
     # Monte Carlo error of the mean: sd / sqrt(ESS), with ESS from the chain itself.
-    ess = np.array([ess_bulk(s.position[..., i].reshape(-1, s.steps)) for i in range(len(s.names))])
     ess = np.array([ess_bulk(np.moveaxis(s.position[..., i], 0, -1).reshape(-1, s.steps))
                     for i in range(len(s.names))])
     assert np.all(ess > 300), ess
