@@ -340,24 +340,23 @@ def cmd_summarize(args) -> int:
 
 
 def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
-    from types import SimpleNamespace
     from . import convergence, summary
     from .store import ChainStore
-    args = SimpleNamespace(chain=str(chain), out=out, burn=burn, no_model=no_model)
-    state = ChainStore(args.chain).read()
+    chain = str(chain)
+    state = ChainStore(chain).read()
     cfg = stored_config(state)
     s = state.samples
     if state.steps_done < 8:
-        raise UserError(f"{args.chain}: only {state.steps_done} steps; nothing to summarise yet")
-    if args.burn is not None and not 0 <= args.burn < state.steps_done:
-        raise UserError(f"--burn must be between 0 and {state.steps_done - 1}, got {args.burn}")
-    outdir = Path(args.out).resolve() if args.out else Path(cfg.summary_dir)
-    v = convergence.assess(s, cfg.stopping, burn=args.burn)
+        raise UserError(f"{chain}: only {state.steps_done} steps; nothing to summarise yet")
+    if burn is not None and not 0 <= burn < state.steps_done:
+        raise UserError(f"--burn must be between 0 and {state.steps_done - 1}, got {burn}")
+    outdir = Path(out).resolve() if out else Path(cfg.summary_dir)
+    v = convergence.assess(s, cfg.stopping, burn=burn)
     s.meta.update({"run": state.provenance.get("run_name"), "experiment": state.provenance.get("experiment"),
                    "converged": v.met, "missing": v.missing, "stop_rule": vars(cfg.stopping),
                    "rejections": state.rejections, "calls": state.steps_done * s.position.shape[1] * s.position.shape[2]})
     dataset, model = None, None
-    if not args.no_model:
+    if not no_model:
         try:
             from .posterior import Posterior
             post = Posterior(cfg)
@@ -371,12 +370,12 @@ def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
                            "pte_best": post.like.pte(chi2, dof)})
         except UserError as err:
             log.warning("no data-vs-model figure: %s", err)
-    rule = (f"set with --burn" if args.burn is not None else
-            f"automatic: 5 × the largest autocorrelation time of any quantity, at most half the run")
+    rule = ("set with --burn" if burn is not None else
+            "automatic: 5 × the largest autocorrelation time of any quantity, at most half the run")
     paths = summary.write_summary(s, str(outdir), burn=v.burn, dataset=dataset, best_model=model,
                                   ess_target=cfg.stopping.ess_above, burn_rule=rule)
     verdict = "met every stopping target" if v.met else "NOT converged: " + "; ".join(v.missing)
-    print(f"summary of {args.chain} ({state.steps_done} steps, {v.burn} discarded as burn-in): {verdict}")
+    print(f"summary of {chain} ({state.steps_done} steps, {v.burn} discarded as burn-in): {verdict}")
     if "chi2_best" in s.meta:
         print(f"best sample: χ² = {s.meta['chi2_best']:.1f} for {s.meta['n_bins']} bands "
               f"({s.meta['dof']} dof after {len(s.names)} parameters), PTE = {s.meta['pte_best']:.3f}")

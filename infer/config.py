@@ -17,7 +17,7 @@ try:
     import tomllib
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import UserError
@@ -103,10 +103,6 @@ class Config:
     @property
     def fixed(self) -> dict[str, float]:
         return {p.name: p.value for p in self.parameters if p.value is not None}
-
-
-def _where(path, key):
-    return f"{path}: {key}"
 
 
 def _check_keys(path, section, table, allowed):

@@ -27,7 +27,6 @@ The driver never knows cosmology: it sees a vector → (ln p, blob) map through 
 from __future__ import annotations
 
 import logging
-import math
 import os
 import signal
 import socket

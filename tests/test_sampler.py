@@ -7,7 +7,6 @@ far from the posterior mass — has the Gaussian posterior N(μ, Σ) with Σ = (
 from __future__ import annotations
 
 import numpy as np
-import pytest
 
 from infer.cli import main
 from infer.diagnostics import ess_bulk
