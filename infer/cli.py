@@ -18,8 +18,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .errors import EXIT_INTERNAL, EXIT_OK, EXIT_PAUSED, EXIT_USAGE, UserError
+from infer import __version__
+from infer.errors import EXIT_INTERNAL, EXIT_OK, EXIT_PAUSED, EXIT_USAGE, UserError
 
 log = logging.getLogger("infer")
 
@@ -42,7 +42,7 @@ def _versions(theory_code: str) -> dict:
 def _override(cfg, args):
     """Apply command-line overrides of run-control settings (never of the posterior)."""
     from dataclasses import replace
-    from .config import parse_duration
+    from infer.config import parse_duration
     sampling, stopping = cfg.sampling, cfg.stopping
     if getattr(args, "workers", None) is not None:
         if args.workers < 0:
@@ -61,17 +61,17 @@ def cap_threads(cfg):
     """Before the theory code is first loaded in this process: an in-process evaluation (workers = 0)
     uses the same OpenMP thread count as a worker process or an MPI rank would (`evaluate.threads_for`),
     so a chain is identical bit for bit however its points were computed."""
-    from .evaluate import set_threads, threads_for
+    from infer.parallel.evaluate import set_threads, threads_for
     if cfg.sampling.workers == 0:
         set_threads(threads_for(1, cfg.sampling.threads_per_worker))
 
 
 def make_evaluator(cfg, posterior, early=None):
-    from .evaluate import InProcess, ProcessPool, never
-    from .mpi import world_size
+    from infer.parallel.evaluate import InProcess, ProcessPool, never
+    from infer.parallel.mpi import world_size
     stop = early.is_set if early is not None else never
     if world_size() > 1:
-        from .mpi import MPIEvaluator
+        from infer.parallel.mpi import MPIEvaluator
         ev = MPIEvaluator(cfg, len(posterior.blob_names))
     elif cfg.sampling.workers == 0:
         ev = InProcess(posterior)
@@ -135,7 +135,7 @@ def _paused_before_start(early, what):
 
 
 def _drive(cfg, store, evaluator, state, start_event, clock, early):
-    from .sampler import Driver
+    from infer.sampling.driver import Driver
     driver = Driver(cfg, store, evaluator, state)
     driver.stop_requested = early.signal           # a signal during start-up pauses at once
     outcome = driver.run(cfg.sampling.steps, cfg.stopping.time_limit, clock, start_event)
@@ -148,13 +148,13 @@ def _drive(cfg, store, evaluator, state, start_event, clock, early):
 
 # -- commands --------------------------------------------------------------------------------------------
 def cmd_run(args) -> int:
-    from . import config
-    from .lock import ChainLock
-    from .posterior import Posterior
-    from .sampler import event, starting_ball
-    from .store import ChainStore
-    from .evaluate import Interrupted
-    from .sampler import process_age
+    from infer import config
+    from infer.store.lock import ChainLock
+    from infer.model.posterior import Posterior
+    from infer.sampling.driver import event, starting_ball
+    from infer.store.chainfile import ChainStore
+    from infer.parallel.evaluate import Interrupted
+    from infer.sampling.driver import process_age
     clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     cfg = _override(config.load(args.config), args)
     if args.chain:
@@ -229,19 +229,19 @@ def _derived_tex(names):
 
 
 def stored_config(state):
-    from . import config
+    from infer import config
     prov = state.provenance
     return config.parse(prov["config_text"], prov["config_path"])
 
 
 def cmd_resume(args) -> int:
-    from . import config
-    from .lock import ChainLock
-    from .posterior import Posterior
-    from .sampler import event
-    from .store import ChainStore
-    from .evaluate import Interrupted
-    from .sampler import process_age
+    from infer import config
+    from infer.store.lock import ChainLock
+    from infer.model.posterior import Posterior
+    from infer.sampling.driver import event
+    from infer.store.chainfile import ChainStore
+    from infer.parallel.evaluate import Interrupted
+    from infer.sampling.driver import process_age
     clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     chain = Path(args.chain).resolve()
     if not chain.exists():
@@ -290,10 +290,10 @@ def cmd_resume(args) -> int:
 
 
 def cmd_status(args) -> int:
-    from . import convergence
-    from .diagnostics import acceptance_fraction
-    from .lock import is_locked, read_holder
-    from .store import ChainStore
+    from infer.sampling import stopping as convergence
+    from infer.analysis.diagnostics import acceptance_fraction
+    from infer.store.lock import is_locked, read_holder
+    from infer.store.chainfile import ChainStore
     state = ChainStore(args.chain).read()
     cfg = stored_config(state)
     s = state.samples
@@ -340,8 +340,9 @@ def cmd_summarize(args) -> int:
 
 
 def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
-    from . import convergence, summary
-    from .store import ChainStore
+    from infer.sampling import stopping as convergence
+    from infer.report import summary
+    from infer.store.chainfile import ChainStore
     chain = str(chain)
     state = ChainStore(chain).read()
     cfg = stored_config(state)
@@ -358,7 +359,7 @@ def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
     dataset, model = None, None
     if not no_model:
         try:
-            from .posterior import Posterior
+            from infer.model.posterior import Posterior
             post = Posterior(cfg)
             flat = s.log_post.reshape(-1)
             best = s.position.reshape(-1, len(s.names))[int(flat.argmax())]
@@ -385,9 +386,9 @@ def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
 
 
 def cmd_simulate(args) -> int:
-    from . import dataset as datasets
-    from . import mock
-    from .theory import make_theory
+    from infer.data import bandpowers as datasets
+    from infer.forecast import mock
+    from infer.theory import make_theory
     exp, fiducial, options = mock.read_experiment(args.spec)
     theory_settings = dict(options["theory"])
     if theory_settings["code"] == "camb":      # the fixed inputs of the fiducial go to the backend
@@ -422,8 +423,8 @@ def cmd_simulate(args) -> int:
 
 def cmd_check(args) -> int:
     import numpy as np
-    from . import config
-    from .posterior import Posterior
+    from infer import config
+    from infer.model.posterior import Posterior
     cfg = config.load(args.config)
     t = time.perf_counter()
     post = Posterior(cfg)
@@ -456,7 +457,7 @@ def cmd_check(args) -> int:
 
 
 def cmd_salvage(args) -> int:
-    from .salvage import salvage
+    from infer.store.salvage import salvage
     steps, exact = salvage(args.damaged, args.out)
     print(f"wrote {args.out}: {steps} intact steps recovered from {args.damaged} (left unchanged); "
           + ("it resumes exactly" if exact else "its random state was re-seeded, so a resume continues "
@@ -534,7 +535,7 @@ def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.debug, args.quiet)
-    from . import mpi
+    from infer.parallel import mpi
     parallel = mpi.world_size() > 1
     if parallel and not mpi.is_root():
         return mpi.serve(args)      # evaluates for rank 0 in run/resume; every other command runs on rank 0 only

@@ -20,7 +20,7 @@ except ModuleNotFoundError:  # Python 3.10
 from dataclasses import dataclass
 from pathlib import Path
 
-from .errors import UserError
+from infer.errors import UserError
 
 SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "output"}
 RUN_KEYS = {"name", "seed"}

@@ -7,7 +7,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from infer import dataset, mock
+from infer.data import bandpowers as dataset
+from infer.forecast import mock
 from infer.theory.templates import NAMES, TemplateTheory
 
 TRUTH = {"a_1": 1.0, "a_2": 1.0, "a_3": 1.0, "a_4": 1.0}

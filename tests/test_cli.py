@@ -79,7 +79,7 @@ def test_resume_refuses_posterior_change_with_readable_diff(write_config, capsys
     allowed.write_text(cfg.read_text().replace("steps = 10", "steps = 20").replace("check_every = 10",
                                                                                   "check_every = 5"))
     assert main(["--quiet", "resume", str(chain), "--config", str(allowed)]) == 0
-    from infer.store import ChainStore
+    from infer.store.chainfile import ChainStore
     state = ChainStore(str(chain)).read()
     assert state.steps_done == 20
     resume = [e for e in state.events if e["event"] == "resume"][-1]

@@ -11,9 +11,9 @@ import sys
 
 import numpy as np
 
-from infer import diagnostics
+from infer.analysis import diagnostics
 from infer.cli import main
-from infer.store import ChainStore
+from infer.store.chainfile import ChainStore
 
 
 def test_run_stops_itself_when_targets_are_met(write_config, capsys):

@@ -14,7 +14,7 @@ import h5py
 import numpy as np
 import pytest
 
-from infer import dataset
+from infer.data import bandpowers as dataset
 from infer.errors import UserError
 
 GRID = np.arange(0, 131)                      # windows/ell: starts at 0 with zero weight at ℓ < 2

@@ -23,7 +23,7 @@ with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)
     import arviz as az  # a declared test dependency: a missing install must fail loudly
 
-from infer import diagnostics as dg
+from infer.analysis import diagnostics as dg
 
 REL_ARVIZ = 0.01  # agreement required with ArviZ
 REL_EMCEE = 1e-8  # agreement required with emcee

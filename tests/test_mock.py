@@ -12,7 +12,8 @@ import numpy as np
 import pytest
 from scipy import constants, stats
 
-from infer import dataset, mock
+from infer.data import bandpowers as dataset
+from infer.forecast import mock
 from infer.errors import UserError
 from infer.theory.base import Spectra
 

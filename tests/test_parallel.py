@@ -21,10 +21,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from infer import mpi
+from infer.parallel import mpi
 from infer.cli import main
 from infer.errors import EXIT_OK, EXIT_PAUSED, EXIT_USAGE
-from infer.store import ChainStore
+from infer.store.chainfile import ChainStore
 
 from conftest import quick_config_text
 
@@ -140,7 +140,7 @@ def test_pool_of_three_equals_serial(folder, quick_data, serial_chain):
 def test_threads_never_depend_on_the_worker_count_and_oversubscription_is_found(monkeypatch):
     """CAMB's spectra differ in the last bits between OpenMP thread counts (tests/bench_parallel.py checks
     it), so the thread count per evaluation must not follow the number of workers or ranks."""
-    from infer.evaluate import threads_for
+    from infer.parallel.evaluate import threads_for
     assert threads_for(1) == threads_for(2) == threads_for(64) == 1
     assert threads_for(64, requested=4) == 4                             # [sampling] threads_per_worker
     # rank 0 (driver, not counted) and ranks 1–3 share node a's 8 cores; rank 4 has node b's 4 cores;

@@ -4,7 +4,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from infer import config
-from infer.posterior import Posterior
+from infer.model.posterior import Posterior
 
 DEMO = Path(__file__).resolve().parent.parent / "configs" / "kestrel_demo.toml"
 

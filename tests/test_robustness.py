@@ -35,11 +35,11 @@ import pytest
 from infer import config
 from infer.cli import main
 from infer.errors import EXIT_PAUSED, ChainFileError, UserError
-from infer.evaluate import InProcess, ProcessPool
-from infer.posterior import Posterior
-from infer.salvage import lookup3, salvage
-from infer.sampler import Driver, starting_ball
-from infer.store import DRAWS, ChainStore
+from infer.parallel.evaluate import InProcess, ProcessPool
+from infer.model.posterior import Posterior
+from infer.store.salvage import lookup3, salvage
+from infer.sampling.driver import Driver, starting_ball
+from infer.store.chainfile import DRAWS, ChainStore
 
 from conftest import quick_config_text
 
@@ -463,7 +463,7 @@ def test_salvage_clears_the_open_for_writing_mark_of_a_writer_that_died(long_cha
 _FUZZ = r"""
 import json, sys
 import numpy as np
-from infer.store import ChainStore, DRAWS
+from infer.store.chainfile import ChainStore, DRAWS
 from infer.errors import ChainFileError
 src, work, seed, n = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4])
 ref = ChainStore(src).read()
@@ -613,7 +613,7 @@ def test_write_failures_inside_a_checkpoint_keep_the_old_file(write_config, monk
     the rename, EROFS from HDF5's own write. Each gives one line, exit 2, and the old file intact."""
     cfg, chain = _short_chain(write_config, "sim.toml", "sim")
     digest = sha256(chain)
-    import infer.store as store_mod
+    import infer.store.chainfile as store_mod
     real_copy, real_replace = shutil.copyfile, os.replace
 
     def no_space(src, dst, **kw):
@@ -631,7 +631,7 @@ def test_write_failures_inside_a_checkpoint_keep_the_old_file(write_config, monk
 
     for patch, what in ((("shutil.copyfile", no_space), "No space left on device"),
                         (("os.replace", no_rename), "Permission denied"),
-                        (("infer.store.ChainStore._grow", staticmethod(ro_grow)), "Read-only file system")):
+                        (("infer.store.chainfile.ChainStore._grow", staticmethod(ro_grow)), "Read-only file system")):
         with monkeypatch.context() as m:
             m.setattr(*patch)
             code = main(["--quiet", "resume", str(chain), "--steps", "20"])

@@ -9,8 +9,8 @@ from __future__ import annotations
 import numpy as np
 
 from infer.cli import main
-from infer.diagnostics import ess_bulk
-from infer.store import ChainStore
+from infer.analysis.diagnostics import ess_bulk
+from infer.store.chainfile import ChainStore
 
 from conftest import analytic_posterior
 

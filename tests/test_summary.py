@@ -18,9 +18,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from infer import diagnostics, plots, summary
+from infer.analysis import diagnostics
+from infer.report import figures as plots
+from infer.report import summary
 from infer.errors import UserError
-from infer.samples import Samples
+from infer.analysis.samples import Samples
 
 STEPS, ENS, WALK = 400, 4, 25          # 40 000 independent draws
 

@@ -60,7 +60,7 @@ margin 150, 5.8e-4 with 300 and 1.8e-4 with 500 (no further gain at 800), for no
 for it with k_max = 2 Mpc⁻¹ and, except at ``high``, its ordinary (not high-precision) k and time
 sampling. Against the high-precision transfer this moves σ₈ by 2e-4 (standard) and 6e-4 (fast)
 relative — well below its ≈1 % statistical error — and CLASS agrees with our σ₈ to 5e-4 (tests).
-Measured with ``python tests/bench_theory.py`` (one thread): the z = 0 transfer adds ≲ 0.2 s CPU to a
+Measured with ``python benchmarks/bench_theory.py`` (one thread): the z = 0 transfer adds ≲ 0.2 s CPU to a
 2–3 s call (within the timing noise), where CAMB's high-precision transfer would add 0.7–1.8 s. S_8 = σ₈ (Ω_m/0.3)^½ (common practice); Ω_m
 includes the massive neutrinos.
 

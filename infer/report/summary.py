@@ -39,9 +39,9 @@ from pathlib import Path
 
 import numpy as np
 
-from infer import diagnostics
+from infer.analysis import diagnostics
 from infer.errors import UserError
-from infer.samples import Samples
+from infer.analysis.samples import Samples
 
 #: R̂ above this flags a row (Vehtari et al. 2021, Bayesian Analysis 16, 667, §4).
 RHAT_TARGET = 1.01
@@ -607,7 +607,7 @@ def write_summary(samples: Samples, outdir, burn: int | None = None, dataset=Non
     renamed into place. Returns {"markdown", "latex", "triangle", "traces", "convergence"[,
     "bandpowers"]: path}.
     """
-    from infer import plots  # matplotlib only when figures are asked for
+    from infer.report import figures as plots  # matplotlib only when figures are asked for
 
     outdir = Path(outdir).expanduser().resolve()
     if os.path.lexists(outdir) and not outdir.is_dir():

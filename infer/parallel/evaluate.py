@@ -31,7 +31,7 @@ from multiprocessing.connection import wait
 
 import numpy as np
 
-from .errors import UserError
+from infer.errors import UserError
 
 log = logging.getLogger("infer")
 
@@ -109,7 +109,7 @@ def _worker_main(conn, cfg, threads):
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     set_threads(threads)
-    from .posterior import Posterior
+    from infer.model.posterior import Posterior
     try:
         post = Posterior(cfg)
     except Exception as err:  # reported to the driver as one line

@@ -34,8 +34,8 @@ from matplotlib.patches import Patch
 from matplotlib.ticker import FuncFormatter, MaxNLocator
 from scipy.ndimage import gaussian_filter, gaussian_filter1d
 
-from infer import diagnostics
-from infer.samples import Samples
+from infer.analysis import diagnostics
+from infer.analysis.samples import Samples
 
 # -- look -------------------------------------------------------------------------------------------
 INK = "#1d2733"           # text, axes, data points

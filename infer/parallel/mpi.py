@@ -41,8 +41,8 @@ import time
 
 import numpy as np
 
-from .errors import EXIT_OK, EXIT_USAGE, UserError
-from .evaluate import Evaluator, InProcess, Interrupted, ProcessPool, set_threads, threads_for
+from infer.errors import EXIT_OK, EXIT_USAGE, UserError
+from infer.parallel.evaluate import Evaluator, InProcess, Interrupted, ProcessPool, set_threads, threads_for
 
 log = logging.getLogger("infer")
 
@@ -312,7 +312,7 @@ def serve(args) -> int:
 
 
 def _build(cfg, threads: int) -> Evaluator:
-    from .posterior import Posterior
+    from infer.model.posterior import Posterior
     if cfg.sampling.workers == 0:
         set_threads(threads)                # before the theory code is first imported in this rank
         return InProcess(Posterior(cfg))

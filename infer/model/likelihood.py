@@ -21,7 +21,7 @@ import math
 import numpy as np
 from scipy import linalg
 
-from .theory.base import Spectra
+from infer.theory.base import Spectra
 
 NUISANCE = {"calibration": 1.0, "fg_tt_amp": 0.0}
 

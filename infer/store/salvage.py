@@ -37,9 +37,9 @@ import time
 import h5py
 import numpy as np
 
-from .errors import ChainFileError, UserError
-from .lock import ChainLock
-from .store import (CONVERGENCE, DRAWS, FORMAT, ChainStore, _strs_from, attr_str, get_json,
+from infer.errors import ChainFileError, UserError
+from infer.store.lock import ChainLock
+from infer.store.chainfile import (CONVERGENCE, DRAWS, FORMAT, ChainStore, _strs_from, attr_str, get_json,
                     rng_from_arrays, zero_steps)
 
 SIGNATURE = b"\x89HDF\r\n\x1a\n"
@@ -269,7 +269,7 @@ def _recover(f, src, size, notes):
     rng = _try(lambda: rng_from_arrays(f["resume"]), lost, "the random states")
     exact = rng is not None and recorded is not None and steps == recorded and len(rng) == E
     if not exact:
-        from .config import parse
+        from infer.config import parse
         seed = _try(lambda: parse(config_text, provenance.get("config_path", "run.toml")).seed, lost,
                     "the seed", default=0)
         rng = []
@@ -281,7 +281,7 @@ def _recover(f, src, size, notes):
     bounds = _try(lambda: {n: tuple(b) for n, b in zip(names, f["names/bounds"][()].tolist())}, lost,
                   "the prior bounds")
     if bounds is None:
-        from .config import parse, support
+        from infer.config import parse, support
         cfg = parse(config_text, provenance.get("config_path", "run.toml"))
         bounds = {p.name: tuple(support(p.prior)) for p in cfg.sampled}
     events = _try(lambda: get_json(f["run/events"]), lost, "the event records", default=[])

@@ -14,12 +14,12 @@ import math
 
 import numpy as np
 
-from . import dataset as datasets
-from .config import Config
-from .errors import UserError
-from .likelihood import NUISANCE, BandPowerLikelihood
-from .priors import PriorSet
-from .theory import TheoryError, make_theory
+from infer.data import bandpowers as datasets
+from infer.config import Config
+from infer.errors import UserError
+from infer.model.likelihood import NUISANCE, BandPowerLikelihood
+from infer.model.priors import PriorSet
+from infer.theory import TheoryError, make_theory
 
 
 def load_data(cfg: Config):

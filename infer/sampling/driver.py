@@ -36,11 +36,11 @@ from dataclasses import dataclass
 import emcee
 import numpy as np
 
-from . import convergence
-from .errors import EXIT_OK, EXIT_PAUSED, UserError
-from .evaluate import Interrupted
-from .progress import Progress
-from .store import ChainState, ChainStore
+from infer.sampling import stopping as convergence
+from infer.errors import EXIT_OK, EXIT_PAUSED, UserError
+from infer.parallel.evaluate import Interrupted
+from infer.sampling.progress import Progress
+from infer.store.chainfile import ChainState, ChainStore
 
 log = logging.getLogger("infer")
 
@@ -73,7 +73,7 @@ def starting_ball(cfg, evaluator, blob_size: int):
     E, W = cfg.sampling.ensembles, cfg.sampling.walkers
     guess = np.array([p.guess for p in cfg.sampled])
     spread = np.array([p.spread for p in cfg.sampled])
-    from .config import support
+    from infer.config import support
     lo, hi = (np.array(b) for b in zip(*(support(p.prior) for p in cfg.sampled)))
     pos = np.empty((E, W, len(guess)))
     lp = np.empty((E, W))

@@ -57,7 +57,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import linalg
 
-from infer import dataset
+from infer.data import bandpowers as dataset
 from infer.errors import UserError
 from infer.theory.base import KINDS, Spectra
 

@@ -21,8 +21,8 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from . import diagnostics
-from .samples import Samples
+from infer.analysis import diagnostics
+from infer.analysis.samples import Samples
 
 
 MAX_STEPS = 4000

@@ -2,9 +2,9 @@
 
 Not collected by pytest (no ``test_`` prefix). Run from the repository root:
 
-    python tests/bench_parallel.py                      # CAMB via configs/kestrel_demo.toml (accuracy "fast")
-    python tests/bench_parallel.py --points 16 --repeats 5
-    python tests/bench_parallel.py --theory templates --delay 0.2     # machinery only, no Boltzmann code
+    python benchmarks/bench_parallel.py                      # CAMB via configs/kestrel_demo.toml (accuracy "fast")
+    python benchmarks/bench_parallel.py --points 16 --repeats 5
+    python benchmarks/bench_parallel.py --theory templates --delay 0.2     # machinery only, no Boltzmann code
 
 What is measured, and how:
 
@@ -96,8 +96,8 @@ def time_batches(evaluator, points, repeats):
 def pool_figures(cfg, points, repeats):
     """The three pool configurations, timed in interleaved rounds (A, B, C, A, B, C, …) so that load from
     other processes on a shared machine falls on all of them alike; the median round is reported."""
-    from infer.evaluate import ProcessPool
-    from infer.posterior import Posterior
+    from infer.parallel.evaluate import ProcessPool
+    from infer.model.posterior import Posterior
     blob = len(Posterior(cfg).blob_names)
     configs = (("1 worker x 1 thread", 1, 1), ("2 workers x 1 thread", 2, 1), ("1 worker x 2 threads", 1, 2))
     pools = {label: ProcessPool(cfg, workers, blob, threads) for label, workers, threads in configs}
@@ -154,8 +154,9 @@ def mpi_child(run_file: str, points_file: str, repeats: int, isolated: bool) -> 
     """Inside ``mpiexec``: rank 0 times MPIEvaluator on the batch, the other ranks serve; ``isolated``:
     each rank computes in a worker process of its own (``workers`` ≥ 1), else inside the rank."""
     from dataclasses import replace
-    from infer import config, mpi
-    from infer.posterior import Posterior
+    from infer import config
+    from infer.parallel import mpi
+    from infer.model.posterior import Posterior
     mpi.start()
     if not mpi.is_root():
         return mpi.serve(SimpleNamespace(command="run"))
@@ -173,9 +174,9 @@ def mpi_child(run_file: str, points_file: str, repeats: int, isolated: bool) -> 
 
 
 def store_figures(sizes, folder: Path, E=4, W=64, P=7, D=8, add=50):
-    from infer import convergence
+    from infer.sampling import stopping as convergence
     from infer.config import Stopping
-    from infer.store import ChainStore
+    from infer.store.chainfile import ChainStore
     rng = np.random.default_rng(0)
     states = [np.random.RandomState(e).get_state() for e in range(E)]
     rows = []
@@ -214,8 +215,8 @@ def store_figures(sizes, folder: Path, E=4, W=64, P=7, D=8, add=50):
 def overhead_figure(folder: Path, repeats: int, n_points: int = 256):
     """Seconds of messaging per point under MPI: mpiexec -n 2 against one process, template model, no delay."""
     from infer import config
-    from infer.evaluate import InProcess
-    from infer.posterior import Posterior
+    from infer.parallel.evaluate import InProcess
+    from infer.model.posterior import Posterior
     run_file = template_run_file(folder, 0.0)
     cfg = config.load(run_file)
     points = point_cloud(cfg, n_points, seed=2)
@@ -233,10 +234,10 @@ def overhead_figure(folder: Path, repeats: int, n_points: int = 256):
 
 def kappa_figure(folder: Path, steps: int, quick_data_dir: Path):
     """Calls per effective sample and τ_int (steps) of a 4 × 64-walker run on the Gaussian template posterior."""
-    from infer import convergence
+    from infer.sampling import stopping as convergence
     from infer.cli import main as infer_main
     from infer.config import Stopping
-    from infer.store import ChainStore
+    from infer.store.chainfile import ChainStore
     sys.path.insert(0, str(REPO / "tests"))
     from conftest import make_quick_dataset, quick_config_text
     data = quick_data_dir / "quick.h5"
@@ -316,7 +317,7 @@ def main(argv=None) -> int:
         return mpi_child(args.mpi_child[0], args.mpi_child[1], int(args.mpi_child[2]), args.mpi_child[3] == "1")
 
     from infer import config
-    from infer.evaluate import set_threads
+    from infer.parallel.evaluate import set_threads
     folder = Path(tempfile.mkdtemp(prefix="infer-bench-"))
     try:
         run_file = Path(args.run_file) if args.theory == "camb" else template_run_file(folder, args.delay)

@@ -23,7 +23,7 @@ import os
 import socket
 import time
 
-from .errors import ChainFileError
+from infer.errors import ChainFileError
 
 log = logging.getLogger("infer")
 

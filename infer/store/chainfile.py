@@ -66,9 +66,9 @@ from dataclasses import dataclass, field
 import h5py
 import numpy as np
 
-from . import __version__
-from .errors import ChainFileError
-from .samples import Samples
+from infer import __version__
+from infer.errors import ChainFileError
+from infer.analysis.samples import Samples
 
 FORMAT = "infer-chain"
 FORMAT_VERSION = 2

@@ -1,6 +1,6 @@
 """Seconds per CAMB call of `infer.theory.camb.CambTheory`, by accuracy preset and ℓ_max.
 
-Run as ``python tests/bench_theory.py [--threads N] [--calls K]`` (not collected by pytest). For each
+Run as ``python benchmarks/bench_theory.py [--threads N] [--calls K]`` (not collected by pytest). For each
 preset and ℓ_max ∈ {1500, 2500} it times the full `compute` (median of K calls after one warm-up, wall and
 process CPU seconds), then what σ₈ costs: the same CAMB run with and without the z = 0 matter transfer
 function, and the high-precision transfer option we do not use below ``high`` (interleaved pairs, median

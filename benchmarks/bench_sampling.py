@@ -1,7 +1,7 @@
 """Benchmark (figures, not a test): cost of the likelihood, of the driver's bookkeeping, and of sampling
 the demo problem, each relative to one theory call.
 
-    python tests/bench_sampling.py [configs/kestrel_demo.toml]
+    python benchmarks/bench_sampling.py [configs/kestrel_demo.toml]
 
 1. Seconds per CAMB call at the run's settings (median of a few calls after a warm-up).
 2. Likelihood time per call (windows + triangular solve + priors) as a fraction of a theory call.
@@ -23,12 +23,13 @@ import emcee
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE))
+sys.path.insert(0, str(HERE.parent / "tests"))
 
-from infer import config, diagnostics  # noqa: E402
+from infer import config
+from infer.analysis import diagnostics  # noqa: E402
 from infer.cli import main  # noqa: E402
-from infer.posterior import Posterior  # noqa: E402
-from infer.sampler import make_moves  # noqa: E402
+from infer.model.posterior import Posterior  # noqa: E402
+from infer.sampling.driver import make_moves  # noqa: E402
 
 
 def median_time(fn, n):

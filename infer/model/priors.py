@@ -12,7 +12,7 @@ import math
 import numpy as np
 from scipy import special
 
-from .config import Parameter, support
+from infer.config import Parameter, support
 
 
 class PriorSet:
