@@ -11,7 +11,7 @@ What is measured, and how:
 1. One batch of ``--points`` posterior points of the Kestrel demo run (configs/kestrel_demo.toml: CAMB
    with accuracy "fast", θ_* sampled, 147 TT/TE/EE bands to ℓ = 1500; the points are a Gaussian cloud of
    the run file's guesses ± spreads, so each CAMB call is a real call at a different point) is evaluated
-   with `infer.evaluate.ProcessPool` as
+   with `infer.parallel.ProcessPool` as
    (a) 1 worker × 1 OpenMP thread, (b) 2 workers × 1 thread — *process* parallelism, what ``[sampling]
    workers`` and MPI ranks give, (c) 1 worker × 2 threads — *thread* parallelism inside CAMB. Workers are
    started and warmed up (one call each) before timing; the configurations are timed in interleaved
@@ -52,7 +52,6 @@ import sys
 import tempfile
 import time
 from pathlib import Path
-from types import SimpleNamespace
 
 import numpy as np
 
@@ -96,11 +95,10 @@ def time_batches(evaluator, points, repeats):
 def pool_figures(cfg, points, repeats):
     """The three pool configurations, timed in interleaved rounds (A, B, C, A, B, C, …) so that load from
     other processes on a shared machine falls on all of them alike; the median round is reported."""
-    from infer.parallel.evaluate import ProcessPool
-    from infer.model.posterior import Posterior
-    blob = len(Posterior(cfg).blob_names)
+    from infer.parallel import ProcessPool
+    from infer.model.posterior import PosteriorFactory
     configs = (("1 worker x 1 thread", 1, 1), ("2 workers x 1 thread", 2, 1), ("1 worker x 2 threads", 1, 2))
-    pools = {label: ProcessPool(cfg, workers, blob, threads) for label, workers, threads in configs}
+    pools = {label: ProcessPool(PosteriorFactory(cfg), workers, threads) for label, workers, threads in configs}
     try:
         for pool in pools.values():
             pool.evaluate(points[:len(pool.workers)])                     # warm-up: one call per worker
@@ -156,15 +154,15 @@ def mpi_child(run_file: str, points_file: str, repeats: int, isolated: bool) -> 
     from dataclasses import replace
     from infer import config
     from infer.parallel import mpi
-    from infer.model.posterior import Posterior
+    from infer.model.posterior import PosteriorFactory
     mpi.start()
     if not mpi.is_root():
-        return mpi.serve(SimpleNamespace(command="run"))
+        return mpi.serve()
     try:
         cfg = config.load(run_file)
         cfg = replace(cfg, sampling=replace(cfg.sampling, workers=1 if isolated else 0))
         points = np.load(points_file, allow_pickle=False)
-        with mpi.MPIEvaluator(cfg, len(Posterior(cfg).blob_names)) as ev:
+        with mpi.MPIEvaluator(PosteriorFactory(cfg), isolate=isolated) as ev:
             ev.evaluate(points[:len(ev.ranks)])                      # warm-up: one call per rank
             med, times, lp = time_batches(ev, points, repeats)
         print(json.dumps({"batch_s": med, "all_s": times, "lp": lp.tolist()}))
@@ -215,7 +213,7 @@ def store_figures(sizes, folder: Path, E=4, W=64, P=7, D=8, add=50):
 def overhead_figure(folder: Path, repeats: int, n_points: int = 256):
     """Seconds of messaging per point under MPI: mpiexec -n 2 against one process, template model, no delay."""
     from infer import config
-    from infer.parallel.evaluate import InProcess
+    from infer.parallel import InProcess
     from infer.model.posterior import Posterior
     run_file = template_run_file(folder, 0.0)
     cfg = config.load(run_file)
@@ -317,7 +315,7 @@ def main(argv=None) -> int:
         return mpi_child(args.mpi_child[0], args.mpi_child[1], int(args.mpi_child[2]), args.mpi_child[3] == "1")
 
     from infer import config
-    from infer.parallel.evaluate import set_threads
+    from infer.parallel import set_threads
     folder = Path(tempfile.mkdtemp(prefix="infer-bench-"))
     try:
         run_file = Path(args.run_file) if args.theory == "camb" else template_run_file(folder, args.delay)

@@ -29,6 +29,7 @@ from infer import config
 from infer.analysis import diagnostics  # noqa: E402
 from infer.cli import main  # noqa: E402
 from infer.model.posterior import Posterior  # noqa: E402
+from infer.forecast.fisher import numerical_fisher  # noqa: E402
 from infer.sampling.driver import make_moves  # noqa: E402
 
 
@@ -44,15 +45,9 @@ def median_time(fn, n):
 def fisher_gaussian(post, cfg):
     x0 = np.array([p.guess for p in cfg.sampled])
     h = np.array([0.5 * p.spread for p in cfg.sampled])
-    derivs = []
-    for i in range(len(x0)):
-        up, dn = x0.copy(), x0.copy()
-        up[i] += h[i]
-        dn[i] -= h[i]
-        derivs.append((post.model_bands(up) - post.model_bands(dn)) / (2 * h[i]))
-    d = np.array(derivs)
-    cinv = np.linalg.inv(post.data.covariance)
-    fisher = d @ cinv @ d.T
+    result = numerical_fisher(post.model_bands, x0, h, post.data.covariance, names=post.names, max_halvings=2)
+    print("   Fisher step check: " + "; ".join(result.summary().splitlines()))
+    fisher = np.array(result.matrix)
     for i, p in enumerate(cfg.sampled):          # Gaussian priors add their precision
         if p.prior.kind != "uniform":
             fisher[i, i] += 1.0 / p.prior.args[1] ** 2

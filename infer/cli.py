@@ -1,7 +1,15 @@
-"""The ``infer`` command: parses arguments and calls the modules; no science lives here.
+"""The ``infer`` command: parses arguments, checks the user's paths, calls the library and prints.
 
-Every user error ends in one line ``infer: error: …`` and exit status 2 (no traceback unless ``--debug``);
-a run stopped by a signal or its wall-time budget exits 75 after writing its checkpoint.
+No science lives here: the posterior and its labels (`infer.model.posterior`), the provenance record
+(`infer.model.provenance`), the timing check (`infer.model.timing`), the theory of a fixed point
+(`infer.theory.theory_at_point`) and the evaluators (`infer.parallel.make_evaluator`) are library
+functions the tests call too.
+
+Every user error ends in one line ``infer: error: …`` and exit status 2 (no traceback unless ``--debug``),
+command-line parsing errors included (``… (see infer COMMAND --help)``, no usage block); every output
+location is checked before the first theory call. A run stopped by a signal or its wall-time budget exits
+75 after writing its checkpoint; output cut short by a closed pipe (``infer status … | head -1``) ends
+quietly with 141 (128 + SIGPIPE, what a shell reports for a program stopped by a closed pipe).
 """
 from __future__ import annotations
 
@@ -9,36 +17,23 @@ import argparse
 import json
 import logging
 import os
-import platform
 import signal
-import socket
 import sys
 import time
 from pathlib import Path
 
 import numpy as np
 
-from infer import __version__
-from infer.errors import EXIT_INTERNAL, EXIT_OK, EXIT_PAUSED, EXIT_USAGE, UserError
+from infer import __version__, paths
+from infer.errors import EXIT_INTERNAL, EXIT_OK, EXIT_PAUSED, EXIT_PIPE, EXIT_USAGE, UserError
 
 log = logging.getLogger("infer")
 
+#: The commands that use the evaluating MPI ranks; every other command runs on rank 0 alone.
+MPI_COMMANDS = ("run", "resume", "fit")
+
 
 # -- helpers ---------------------------------------------------------------------------------------------
-def _versions(theory_code: str) -> dict:
-    import emcee
-    import h5py
-    import numpy
-    import scipy
-    out = {"infer": __version__, "python": platform.python_version(), "numpy": numpy.__version__,
-           "scipy": scipy.__version__, "emcee": emcee.__version__, "h5py": h5py.__version__,
-           "hdf5": h5py.version.hdf5_version}
-    if theory_code == "camb":
-        import camb
-        out["camb"] = camb.__version__
-    return out
-
-
 def _override(cfg, args):
     """Apply command-line overrides of run-control settings (never of the posterior)."""
     from dataclasses import replace
@@ -52,44 +47,31 @@ def _override(cfg, args):
         if args.steps < 1:
             raise UserError(f"--steps must be >= 1, got {args.steps}")
         sampling = replace(sampling, steps=args.steps)
-    if getattr(args, "time_limit", None):
+    if getattr(args, "time_limit", None) is not None:          # an empty value is an error, not "no limit"
         stopping = replace(stopping, time_limit=parse_duration(args.time_limit))
     return replace(cfg, sampling=sampling, stopping=stopping)
 
 
 def cap_threads(cfg):
-    """Before the theory code is first loaded in this process: an in-process evaluation (workers = 0)
-    uses the same OpenMP thread count as a worker process or an MPI rank would (`evaluate.threads_for`),
-    so a chain is identical bit for bit however its points were computed."""
-    from infer.parallel.evaluate import set_threads, threads_for
-    if cfg.sampling.workers == 0:
-        set_threads(threads_for(1, cfg.sampling.threads_per_worker))
+    """Before the theory code is first loaded in this process (see `infer.parallel.cap_in_process_threads`)."""
+    from infer.parallel import cap_in_process_threads
+    cap_in_process_threads(cfg.sampling.workers, cfg.sampling.threads_per_worker)
 
 
 def make_evaluator(cfg, posterior, early=None):
-    from infer.parallel.evaluate import InProcess, ProcessPool, never
-    from infer.parallel.mpi import world_size
+    """The run's evaluator: the posterior's factory on MPI ranks, worker processes or (workers = 0) the
+    already built ``posterior`` in this process."""
+    from infer.model.posterior import PosteriorFactory
+    from infer.parallel import make_evaluator as build, never
     stop = early.is_set if early is not None else never
-    if world_size() > 1:
-        from infer.parallel.mpi import MPIEvaluator
-        ev = MPIEvaluator(cfg, len(posterior.blob_names))
-    elif cfg.sampling.workers == 0:
-        ev = InProcess(posterior)
-    else:
-        ev = ProcessPool(cfg, cfg.sampling.workers, len(posterior.blob_names), cfg.sampling.threads_per_worker,
-                         should_stop=stop)
-    ev.should_stop = stop
-    return ev
+    return build(PosteriorFactory(cfg), cfg.sampling.workers, cfg.sampling.threads_per_worker, should_stop=stop,
+                 built=posterior, points_per_call=cfg.sampling.walkers // 2)
 
 
-def _check_writable_dir(path: Path):
-    d = path.parent
-    try:
-        d.mkdir(parents=True, exist_ok=True)
-    except OSError as err:
-        raise UserError(f"{d}: cannot create the output folder ({err.strerror})") from None
-    if not os.access(d, os.W_OK | os.X_OK):
-        raise UserError(f"{d}: the output folder is not writable")
+def _check_can_set_aside(chain: Path):
+    """``--replace`` renames an existing chain file: only ever a file that is an infer chain."""
+    from infer.store.chainfile import FORMAT
+    paths.replaceable(chain, FORMAT, "chain", "sets aside")
 
 
 def _report(outcome, chain_path):
@@ -151,35 +133,37 @@ def cmd_run(args) -> int:
     from infer import config
     from infer.store.lock import ChainLock
     from infer.model.posterior import Posterior
-    from infer.sampling.driver import event, starting_ball
+    from infer.sampling.driver import event
+    from infer.sampling.start import starting_ball
     from infer.store.chainfile import ChainStore
-    from infer.parallel.evaluate import Interrupted
+    from infer.parallel import Interrupted
+    from infer.model import provenance
     from infer.sampling.driver import process_age
     clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     cfg = _override(config.load(args.config), args)
     if args.chain:
         cfg = _replace_paths(cfg, args.chain)
     chain = Path(cfg.chain_path)
-    _check_writable_dir(chain)
+    paths.file_folder(chain)
+    if chain.exists() and args.replace:
+        _check_can_set_aside(chain)
+    if args.summarize:
+        paths.output_folder(cfg.summary_dir, "summary folder")
     cap_threads(cfg)
+    if cfg.sampling.engine == "surrogate":
+        return _run_surrogate(cfg, args, chain, clock)
     posterior = Posterior(cfg)                       # validates dataset, theory and parameters first
     with _EarlySignals() as early, ChainLock(str(chain)):
         store = ChainStore(str(chain))
         store.remove_strays()
-        if chain.exists():
-            if not args.replace:
-                raise UserError(f"{chain} already exists: continue it with `infer resume {chain}`, or pass "
-                                "--replace to set it aside (it is renamed, never deleted)")
-            aside = chain.with_name(chain.name + time.strftime(".replaced-%Y%m%d-%H%M%S"))
-            os.replace(chain, aside)
-            log.info("set the existing chain aside as %s", aside)
+        _set_aside(chain, args)
         log.info("run '%s': %d sampled parameters, %d bands (%s), %d ensembles × %d walkers, up to %d steps",
                  cfg.name, len(posterior.names), posterior.like.n, "/".join(posterior.like.kinds),
                  cfg.sampling.ensembles, cfg.sampling.walkers, cfg.sampling.steps)
         evaluator = None
         try:
             evaluator = make_evaluator(cfg, posterior, early)
-            start, rng = starting_ball(cfg, evaluator, len(posterior.blob_names))
+            start = starting_ball(cfg, evaluator, posterior.blob_names)
         except Interrupted:
             if evaluator is not None:
                 evaluator.close()
@@ -188,22 +172,94 @@ def cmd_run(args) -> int:
             if evaluator is not None:
                 evaluator.close()
             raise
-        provenance = {
-            "config_text": cfg.text, "config_path": cfg.path, "run_name": cfg.name, "seed": cfg.seed,
-            "dataset_file": cfg.dataset["file"], "dataset_sha256": posterior.data.sha256,
-            "experiment": posterior.data.experiment, "model": json.dumps(posterior.describe(), default=str),
-            "versions": json.dumps(_versions(cfg.theory["code"])), "host": socket.gethostname(),
-        }
         store.create(names=posterior.names, derived_names=posterior.derived_names,
-                     tex={p.name: p.tex for p in cfg.parameters} | _derived_tex(posterior.derived_names),
-                     bounds=posterior.priors.bounds, ensembles=cfg.sampling.ensembles,
-                     walkers=cfg.sampling.walkers, start=start, rng=rng, provenance=provenance)
+                     tex=posterior.labels(),
+                     bounds=posterior.priors.bounds, start=start,
+                     provenance=provenance.record(cfg, posterior))
         log.info("chain file: %s", chain)
         try:
             code = _drive(cfg, store, evaluator, store.read(), event("start", steps=0, workers=cfg.sampling.workers),
                           clock, early)
         finally:
             evaluator.close()
+    return _maybe_summarize(args, chain, code)
+
+
+def _set_aside(chain: Path, args) -> None:
+    """An existing chain at the path: refused, or with ``--replace`` renamed (never deleted)."""
+    if chain.exists():
+        if not args.replace:
+            raise UserError(f"{chain} already exists: continue it with `infer resume {chain}`, or pass "
+                            "--replace to set it aside (it is renamed, never deleted)")
+        _check_can_set_aside(chain)
+        aside = chain.with_name(chain.name + time.strftime(".replaced-%Y%m%d-%H%M%S"))
+        os.replace(chain, aside)
+        log.info("set the existing chain aside as %s", aside)
+
+
+def _run_surrogate(cfg, args, chain: Path, clock) -> int:
+    """``infer run`` with ``[sampling] engine = "surrogate"`` (`infer.surrogate_run`)."""
+    from infer import surrogate_run
+    from infer.sampling.driver import event
+    from infer.store.enginefile import EngineFile
+    from infer.store.lock import ChainLock
+    problem = surrogate_run.problem_for(cfg)         # validates dataset, theory and parameters first
+    log.info("run '%s' with the surrogate engine: %d sampled parameters (%d emulated), %d bands (%s), "
+             "weight-ESS target %.0f", cfg.name, len(problem.names), len(problem.theory_index), problem.n_bands,
+             "/".join(problem.like.kinds), cfg.stopping.ess_above)
+    with _EarlySignals() as early, ChainLock(str(chain)):
+        store = EngineFile(str(chain))
+        store.remove_strays()
+        _set_aside(chain, args)
+        surrogate_run.create(cfg, store, problem)
+        log.info("chain file: %s", chain)
+        code = surrogate_run.execute(cfg, store, problem, early=early, clock=clock,
+                                     start_event=event("start", calls=0, workers=cfg.sampling.workers))
+    return _maybe_summarize(args, chain, code)
+
+
+def _resume_surrogate(args, chain: Path, clock) -> int:
+    """``infer resume`` of a surrogate-engine chain: the engine re-runs over the stored exact calls."""
+    from dataclasses import replace
+    from infer import config, surrogate_run
+    from infer.sampling.driver import event
+    from infer.store.enginefile import EngineFile
+    from infer.store.lock import ChainLock
+    if args.steps is not None:
+        raise UserError("--steps applies to ensemble runs; a surrogate-engine run is bounded by "
+                        "[surrogate] max_exact (give a run file with a larger one via --config)")
+    with _EarlySignals() as early, ChainLock(str(chain)):
+        store = EngineFile(str(chain))
+        store.remove_strays()
+        state = store.read()
+        old = stored_config(state)
+        cfg, changes = old, []
+        if args.config:
+            new = config.load(args.config)
+            refused, changes = config.diff(old, new)
+            if refused:
+                raise UserError(f"refusing to resume {args.chain} with {args.config}: it changes the posterior "
+                                f"or the engine ({'; '.join(refused)}); start a new chain instead")
+            cfg = new
+        cfg = _override(replace(cfg, chain_path=str(chain), summary_dir=old.summary_dir), args)
+        for flag, val in (("workers", args.workers), ("time_limit", args.time_limit)):
+            if val is not None:
+                changes.append(f"--{flag.replace('_', '-')} {val}")
+        if args.summarize:
+            paths.output_folder(cfg.summary_dir, "summary folder")
+        cap_threads(cfg)
+        problem = surrogate_run.problem_for(cfg)
+        if problem.model.posterior.data.sha256 != state.provenance.get("dataset_sha256"):
+            raise UserError(f"refusing to resume {args.chain}: the dataset {cfg.dataset['file']} has changed "
+                            "since the chain was started (SHA-256 differs)")
+        if state.report is not None and state.report.get("converged") and not changes:
+            log.info("%s has converged already (weight ESS %.0f, k̂ %.2f); nothing to do", chain,
+                     state.report["ess"], state.report["khat"])
+            return _maybe_summarize(args, chain, EXIT_OK)
+        log.info("resuming %s after %d exact calls%s", chain, state.calls_done,
+                 f" (changes: {'; '.join(changes)})" if changes else "")
+        code = surrogate_run.execute(cfg, store, problem, early=early, clock=clock,
+                                     start_event=event("resume", calls=state.calls_done, changes=changes))
     return _maybe_summarize(args, chain, code)
 
 
@@ -221,13 +277,6 @@ def _replace_paths(cfg, chain):
     return replace(cfg, chain_path=str(p), summary_dir=str(p.with_suffix("")))
 
 
-def _derived_tex(names):
-    tex = {"H0": r"H_0", "Omega_m": r"\Omega_{\rm m}", "sigma_8": r"\sigma_8", "S_8": r"S_8",
-           "age_Gyr": r"t_0\,[\mathrm{Gyr}]", "z_re": r"z_{\rm re}", "theta_star_100": r"100\,\theta_*",
-           "chi2": r"\chi^2", "a_sum": r"\Sigma a"}
-    return {n: tex[n] for n in names if n in tex}
-
-
 def stored_config(state):
     from infer import config
     prov = state.provenance
@@ -240,12 +289,16 @@ def cmd_resume(args) -> int:
     from infer.model.posterior import Posterior
     from infer.sampling.driver import event
     from infer.store.chainfile import ChainStore
-    from infer.parallel.evaluate import Interrupted
+    from infer.parallel import Interrupted
     from infer.sampling.driver import process_age
     clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     chain = Path(args.chain).resolve()
     if not chain.exists():
         raise UserError(f"{args.chain}: no such chain file")
+    paths.readable(chain, "chain file")
+    from infer.store.enginefile import engine_of
+    if engine_of(chain) == "surrogate":
+        return _resume_surrogate(args, chain, clock)
     with _EarlySignals() as early, ChainLock(str(chain)):
         store = ChainStore(str(chain))
         store.remove_strays()
@@ -266,6 +319,8 @@ def cmd_resume(args) -> int:
         for flag, val in (("steps", args.steps), ("workers", args.workers), ("time_limit", args.time_limit)):
             if val is not None:
                 changes.append(f"--{flag.replace('_', '-')} {val}")
+        if args.summarize:
+            paths.output_folder(cfg.summary_dir, "summary folder")
         cap_threads(cfg)
         posterior = Posterior(cfg)
         if posterior.data.sha256 != state.provenance.get("dataset_sha256"):
@@ -290,48 +345,12 @@ def cmd_resume(args) -> int:
 
 
 def cmd_status(args) -> int:
-    from infer.sampling import stopping as convergence
-    from infer.analysis.diagnostics import acceptance_fraction
-    from infer.store.lock import is_locked, read_holder
+    from infer.report.status import status_report
     from infer.store.chainfile import ChainStore
+    from infer.store.lock import is_locked, read_holder
     state = ChainStore(args.chain).read()
-    cfg = stored_config(state)
-    s = state.samples
-    E, W = s.position.shape[1:3] if s.steps else (0, 0)
-    print(f"chain     {os.path.abspath(args.chain)}")
     holder = read_holder(args.chain) if is_locked(args.chain) else {}
-    if holder:
-        print(f"writer    process {holder.get('pid')} on {holder.get('host')} since {holder.get('started')}")
-    print(f"run       {state.provenance.get('run_name')}  (dataset {os.path.basename(state.provenance.get('dataset_file', ''))})")
-    print(f"steps     {state.steps_done} of up to {cfg.sampling.steps}  "
-          f"({cfg.sampling.ensembles} ensembles × {cfg.sampling.walkers} walkers)")
-    if state.steps_done < 8:
-        print("verdict   too few steps to judge")
-        return EXIT_OK
-    acc = [acceptance_fraction(s.position[:, e]).mean() for e in range(s.position.shape[1])]
-    v = convergence.assess(s, cfg.stopping)
-    print(f"accept    {np.mean(acc):.3f}  (per ensemble: {', '.join(f'{a:.3f}' for a in acc)})")
-    print(f"burn-in   {v.burn} steps (automatic rule: 5 τ_max, at most half)")
-    print(f"R̂ max     {v.rhat_max:.4f}   target < {cfg.stopping.rhat_below}")
-    print(f"ESS min   bulk {v.ess_bulk_min:.0f}, tail {v.ess_tail_min:.0f}   target > {cfg.stopping.ess_above:.0f}")
-    print(f"τ max     {v.tau_max:.1f} steps   run length {state.steps_done} vs {cfg.stopping.tau_multiple:g} τ = "
-          f"{cfg.stopping.tau_multiple * v.tau_max:.0f}")
-    calls = state.steps_done * E * W
-    ess = min(v.ess_bulk_min, v.ess_tail_min)
-    print(f"cost      {calls} posterior calls; {calls / ess:.1f} calls per effective sample" if ess > 0 else
-          f"cost      {calls} posterior calls")
-    print(f"verdict   {'targets met' if v.met else 'not converged: ' + '; '.join(v.missing)}")
-    if state.rejections:
-        print("rejected  " + ", ".join(f"{k} {n}" for k, n in sorted(state.rejections.items())))
-    if state.failures:
-        print(f"crashes   {len(state.failures)} theory-process deaths (points in /run/failures)")
-    stop = s.meta.get("stop_reason")
-    if stop:
-        print(f"stopped   {stop}")
-    if args.params:
-        print(f"\n{'quantity':<16}{'R̂':>9}{'ESS bulk':>10}{'ESS tail':>10}{'τ':>8}")
-        for name, d in v.per_param.items():
-            print(f"{name:<16}{d['rhat']:>9.4f}{d['ess_bulk']:>10.0f}{d['ess_tail']:>10.0f}{d['tau']:>8.1f}")
+    print(status_report(state, stored_config(state), args.chain, params=args.params, holder=holder))
     return EXIT_OK
 
 
@@ -340,73 +359,30 @@ def cmd_summarize(args) -> int:
 
 
 def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
-    from infer.sampling import stopping as convergence
-    from infer.report import summary
+    from infer.report.summary import summarize_run
     from infer.store.chainfile import ChainStore
-    chain = str(chain)
-    state = ChainStore(chain).read()
-    cfg = stored_config(state)
-    s = state.samples
-    if state.steps_done < 8:
-        raise UserError(f"{chain}: only {state.steps_done} steps; nothing to summarise yet")
-    if burn is not None and not 0 <= burn < state.steps_done:
-        raise UserError(f"--burn must be between 0 and {state.steps_done - 1}, got {burn}")
-    outdir = Path(out).resolve() if out else Path(cfg.summary_dir)
-    v = convergence.assess(s, cfg.stopping, burn=burn)
-    s.meta.update({"run": state.provenance.get("run_name"), "experiment": state.provenance.get("experiment"),
-                   "converged": v.met, "missing": v.missing, "stop_rule": vars(cfg.stopping),
-                   "rejections": state.rejections, "calls": state.steps_done * s.position.shape[1] * s.position.shape[2]})
-    dataset, model = None, None
-    if not no_model:
-        try:
-            from infer.model.posterior import Posterior
-            post = Posterior(cfg)
-            flat = s.log_post.reshape(-1)
-            best = s.position.reshape(-1, len(s.names))[int(flat.argmax())]
-            model = post.model_bands(best)
-            dataset = post.data
-            chi2 = post.like.chi2(model)
-            dof = post.like.n - len(s.names)
-            s.meta.update({"chi2_best": chi2, "n_bins": post.like.n, "dof": dof,
-                           "pte_best": post.like.pte(chi2, dof)})
-        except UserError as err:
-            log.warning("no data-vs-model figure: %s", err)
-    rule = ("set with --burn" if burn is not None else
-            "automatic: 5 × the largest autocorrelation time of any quantity, at most half the run")
-    paths = summary.write_summary(s, str(outdir), burn=v.burn, dataset=dataset, best_model=model,
-                                  ess_target=cfg.stopping.ess_above, burn_rule=rule)
-    verdict = "met every stopping target" if v.met else "NOT converged: " + "; ".join(v.missing)
-    print(f"summary of {chain} ({state.steps_done} steps, {v.burn} discarded as burn-in): {verdict}")
-    if "chi2_best" in s.meta:
-        print(f"best sample: χ² = {s.meta['chi2_best']:.1f} for {s.meta['n_bins']} bands "
-              f"({s.meta['dof']} dof after {len(s.names)} parameters), PTE = {s.meta['pte_best']:.3f}")
-    for kind, path in paths.items():
-        print(f"  {kind:<12} {path}")
+    state = ChainStore(str(chain)).read()
+    print(summarize_run(state, stored_config(state), str(chain), out, burn, no_model))
     return EXIT_OK
 
 
 def cmd_simulate(args) -> int:
-    from infer.data import bandpowers as datasets
-    from infer.forecast import mock
-    from infer.theory import make_theory
+    from infer import data as datasets
+    from infer import forecast as mock
+    from infer.theory import theory_at_point
     exp, fiducial, options = mock.read_experiment(args.spec)
-    theory_settings = dict(options["theory"])
-    if theory_settings["code"] == "camb":      # the fixed inputs of the fiducial go to the backend
-        for key in ("sum_mnu_eV", "n_eff"):
-            if key in fiducial:
-                theory_settings.setdefault(key, fiducial[key])
     if args.out is None and options.get("output") is None:
         raise UserError(f"{args.spec}: no output file: give OUT on the command line or [mock] output")
     out = Path(args.out if args.out is not None else options["output"]).resolve()
     if out.exists() and not args.replace:
         raise UserError(f"{out} already exists (pass --replace to overwrite it)")
-    _check_writable_dir(out)
-    theory = make_theory(theory_settings, exp.ell_max + 2, where=f"{args.spec}: [theory]")
-    missing = [k for k in getattr(theory, "required", theory.inputs) if k not in fiducial]
-    if missing:
-        raise UserError(f"{args.spec}: [fiducial] lacks {', '.join(missing)} needed by theory code "
-                        f"'{theory_settings['code']}'")
-    inputs = {k: v for k, v in fiducial.items() if k in theory.inputs}
+    if out.exists():
+        from infer.data.hdf5 import FORMAT
+        paths.replaceable(out, FORMAT, "dataset", "overwrites")
+    paths.file_folder(out)
+    datasets.check_target(out, overwrite=args.replace)
+    theory, inputs = theory_at_point(options["theory"], fiducial, exp.ell_max + 2, where=f"{args.spec}: [theory]",
+                                     point_where=f"{args.spec}: [fiducial]")
     spectra = theory.compute(inputs)
     seed = args.seed if args.seed is not None else options.get("seed")
     realise = options.get("realise", True) and not args.no_noise
@@ -422,9 +398,9 @@ def cmd_simulate(args) -> int:
 
 
 def cmd_check(args) -> int:
-    import numpy as np
     from infer import config
     from infer.model.posterior import Posterior
+    from infer.model.timing import time_posterior
     cfg = config.load(args.config)
     t = time.perf_counter()
     post = Posterior(cfg)
@@ -439,20 +415,10 @@ def cmd_check(args) -> int:
     if reason:
         raise UserError(f"{cfg.path}: the posterior at the guesses is -inf ({reason}); fix 'guess' values")
     print(f"at guess   ln p = {lp:.2f}, χ² = {blob[-1]:.1f} for {post.like.n} bands")
-    values = {k: v for k, v in post.point(x).items() if k in post.theory.inputs}
-    theory_t, like_t = [], []
-    for _ in range(args.calls):
-        t = time.perf_counter()
-        spectra = post.theory.compute(values)
-        t1 = time.perf_counter()
-        for _ in range(20):
-            post.like.loglike(spectra)
-            post.priors.logpdf(x)
-        like_t.append((time.perf_counter() - t1) / 20)
-        theory_t.append(t1 - t)
-    th, lk = float(np.median(theory_t)), float(np.median(like_t))
-    print(f"theory     {th:.3f} s per call (median of {args.calls}, threads {os.environ.get('OMP_NUM_THREADS', 'all')})")
-    print(f"likelihood {lk * 1e3:.3f} ms per call = {100 * lk / th:.3f} % of a theory call (goal ≤ 1 %)")
+    t = time_posterior(post, x, args.calls)
+    print(f"theory     {t['theory_s']:.3f} s per call (median of {t['calls']}, threads {t['threads']})")
+    print(f"likelihood {t['likelihood_s'] * 1e3:.3f} ms per call = {100 * t['fraction']:.3f} % of a theory call "
+          "(goal ≤ 1 %)")
     return EXIT_OK
 
 
@@ -465,9 +431,61 @@ def cmd_salvage(args) -> int:
     return EXIT_OK
 
 
+def cmd_fit(args) -> int:
+    from infer import config
+    from infer.fit import bestfit
+    from infer.parallel import cap_in_process_threads
+    mode = "likelihood" if args.likelihood else "posterior"
+    cfg = config.load(args.config)
+    out = bestfit.check_output(args.out or bestfit.default_path(cfg, mode), args.replace)
+    workers = cfg.sampling.workers if args.workers is None else args.workers
+    cap_in_process_threads(workers, cfg.sampling.threads_per_worker)
+    result = bestfit.fit(cfg, starts=args.starts, mode=mode, workers=workers)
+    path = bestfit.write(result, out, overwrite=args.replace)
+    print(bestfit.table(result))
+    print(f"wrote {path}")
+    return EXIT_OK
+
+
 # -- entry point -----------------------------------------------------------------------------------------
+class UsageError(UserError):
+    """A command-line parsing error (one line, exit 2)."""
+
+
+class Parser(argparse.ArgumentParser):
+    """argparse with every error as one line ``infer: error: …  (see infer COMMAND --help)`` and exit 2,
+    never a usage block: the error is raised as `UsageError` and printed by `main` like any user error."""
+
+    def error(self, message):
+        raise UsageError(f"{message}  (see {self.prog} --help)")
+
+
+def _integer(low: int, what: str):
+    """An argparse type: an integer >= ``low``."""
+    def parse(text):
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"must be an integer ({what}), got {text!r}") from None
+        if value < low:
+            raise argparse.ArgumentTypeError(f"must be >= {low} ({what}), got {value}")
+        return value
+    parse.__name__ = "integer"
+    return parse
+
+
+def _duration(text):
+    """An argparse type: a wall-time budget (checked as the run file's time_limit is); kept as text."""
+    from infer.config import parse_duration
+    try:
+        parse_duration(text, where="--time-limit")
+    except UserError as err:
+        raise argparse.ArgumentTypeError(str(err).removeprefix("--time-limit: ")) from None
+    return text
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="infer", description="Cosmological parameters from CMB band powers.")
+    p = Parser(prog="infer", description="Cosmological parameters from CMB band powers.")
     p.add_argument("--version", action="version", version=f"infer {__version__}")
     p.add_argument("--debug", action="store_true", help="show tracebacks and debug messages")
     p.add_argument("--quiet", action="store_true", help="only warnings and errors")
@@ -484,9 +502,12 @@ def build_parser() -> argparse.ArgumentParser:
     u.add_argument("--config", help="a run file whose run-control settings replace the stored ones")
     u.set_defaults(func=cmd_resume)
     for sp in (r, u):
-        sp.add_argument("--steps", type=int, help="total length to reach (overrides [sampling] steps)")
-        sp.add_argument("--workers", type=int, help="worker processes for the posterior (0: in this process)")
-        sp.add_argument("--time-limit", help="wall-time budget, e.g. 47:30:00; stops cleanly before it")
+        sp.add_argument("--steps", type=_integer(1, "total steps"),
+                        help="total length to reach (overrides [sampling] steps)")
+        sp.add_argument("--workers", type=_integer(0, "worker processes"),
+                        help="worker processes for the posterior (0: in this process)")
+        sp.add_argument("--time-limit", type=_duration,
+                        help="wall-time budget, e.g. 47:30:00; stops cleanly before it")
         sp.add_argument("--summarize", action="store_true",
                         help="when the run ends (not when paused), write the summary tables and figures")
 
@@ -498,27 +519,38 @@ def build_parser() -> argparse.ArgumentParser:
     m = sub.add_parser("summarize", help="constraints tables and figures")
     m.add_argument("chain")
     m.add_argument("--out", help="output folder (default: beside the chain, named after it)")
-    m.add_argument("--burn", type=int, help="steps to discard (default: automatic from τ)")
+    m.add_argument("--burn", type=_integer(0, "steps to discard"), help="steps to discard (default: automatic from τ)")
     m.add_argument("--no-model", action="store_true", help="skip the theory call for the data-vs-model figure")
     m.set_defaults(func=cmd_summarize)
 
     g = sub.add_parser("simulate", help="mock band powers for an invented experiment")
     g.add_argument("spec", help="experiment spec (TOML, see configs/kestrel.toml)")
     g.add_argument("out", nargs="?", help="dataset file to write (.h5; default: [mock] output of the spec)")
-    g.add_argument("--seed", type=int, help="seed of the noise realisation")
+    g.add_argument("--seed", type=_integer(0, "seed"), help="seed of the noise realisation")
     g.add_argument("--no-noise", action="store_true", help="band powers equal to the binned fiducial theory")
     g.add_argument("--replace", action="store_true", help="overwrite an existing output file")
     g.set_defaults(func=cmd_simulate)
 
     c = sub.add_parser("check", help="validate a run file and time the theory and likelihood")
     c.add_argument("config")
-    c.add_argument("--calls", type=int, default=3, help="theory calls to time")
+    c.add_argument("--calls", type=_integer(1, "theory calls to time"), default=3, help="theory calls to time")
     c.set_defaults(func=cmd_check)
 
     v = sub.add_parser("salvage", help="copy the intact part of a damaged chain into a new file")
     v.add_argument("damaged")
     v.add_argument("out")
     v.set_defaults(func=cmd_salvage)
+
+    f = sub.add_parser("fit", help="best fit (MAP, or MLE with --likelihood), Laplace covariance, χ² and PTE")
+    f.add_argument("config")
+    f.add_argument("--starts", type=_integer(1, "starting points"), default=3,
+                   help="starting points: the guesses plus draws from the starting ball (default 3)")
+    f.add_argument("--likelihood", action="store_true", help="maximise the likelihood (priors kept as bounds only)")
+    f.add_argument("--out", help="result file (.json; default: beside the chain, e.g. NAME.peak-posterior.json)")
+    f.add_argument("--replace", action="store_true", help="overwrite an earlier fit result")
+    f.add_argument("--workers", type=_integer(0, "worker processes"),
+                   help="worker processes for the exact calls (default: [sampling] workers)")
+    f.set_defaults(func=cmd_fit)
     return p
 
 
@@ -531,23 +563,53 @@ def _setup_logging(debug: bool, quiet: bool):
     log.propagate = False
 
 
+def _stdout_closed() -> int:
+    """The reader of our standard output has gone (``| head``): stop quietly. Later writes (and the flush
+    at exit) go to /dev/null, so no second error is printed."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError, AttributeError):
+        pass
+    return EXIT_PIPE
+
+
+def _error(message: str) -> int:
+    try:
+        print(f"infer: error: {message}", file=sys.stderr)
+    except (BrokenPipeError, OSError):
+        pass
+    return EXIT_USAGE
+
+
 def main(argv=None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
-    _setup_logging(args.debug, args.quiet)
     from infer.parallel import mpi
+    try:
+        args = parser.parse_args(argv)
+    except UserError as err:
+        return _error(str(err)) if mpi.is_root() else EXIT_USAGE     # one line, not one per MPI rank
+    _setup_logging(args.debug, args.quiet)
     parallel = mpi.world_size() > 1
     if parallel and not mpi.is_root():
-        return mpi.serve(args)      # evaluates for rank 0 in run/resume; every other command runs on rank 0 only
+        # evaluates for rank 0 in run/resume; every other command runs on rank 0 only
+        return mpi.serve() if args.command in MPI_COMMANDS else EXIT_OK
     try:
-        if parallel and args.command in mpi.MPI_COMMANDS:
+        if parallel and args.command in MPI_COMMANDS:
             mpi.start()
-        return args.func(args)
+        for name in ("chain", "damaged"):
+            if isinstance(getattr(args, name, None), str):
+                paths.readable(getattr(args, name), "chain file")
+        code = args.func(args)
+        sys.stdout.flush()                   # a closed pipe shows here, not at exit
+        return code
+    except BrokenPipeError:
+        return _stdout_closed()
     except UserError as err:
         if args.debug:
             raise
-        print(f"infer: error: {err}", file=sys.stderr)
-        return EXIT_USAGE
+        return _error(str(err))
     except KeyboardInterrupt:
         print("infer: interrupted", file=sys.stderr)
         return 130
@@ -558,7 +620,7 @@ def main(argv=None) -> int:
               "and please report it)", file=sys.stderr)
         return EXIT_INTERNAL
     finally:
-        if parallel and args.command in mpi.MPI_COMMANDS:
+        if parallel and args.command in MPI_COMMANDS:
             mpi.shutdown()
 
 

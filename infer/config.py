@@ -6,7 +6,13 @@ the run file's own folder, so a run behaves the same from any working directory.
 
 Sections and keys (the README's config reference is generated from the same tables):
 ``[run]``, ``[dataset]``, ``[theory]``, ``[parameters.NAME]``, ``[sampling]``, ``[stopping]``,
-``[output]``.
+``[output]``. Every key's type and range is checked here with `infer.validate` (the ranges are the
+``LIMITS`` table below: wide enough for any real run, narrow enough that no value overflows a later
+computation or sizes an absurd allocation), and priors are checked for a finite normalisation: a
+uniform prior's width must be a finite double, and a truncated normal must hold at least
+`MIN_PRIOR_MASS` of its normal's probability inside its range (computed in the lower tail with
+``scipy.special.log_ndtr``, so it does not underflow to zero as a difference of two CDFs near 1 does).
+Keys of ``[theory]`` other than ``code`` belong to the backend, which checks them when it is built.
 """
 from __future__ import annotations
 
@@ -20,25 +26,78 @@ except ModuleNotFoundError:  # Python 3.10
 from dataclasses import dataclass
 from pathlib import Path
 
-from infer.errors import UserError
+from scipy import special
 
-SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "output"}
+from infer import validate
+from infer.data.bandpowers import MAX_ELL, UNITS
+from infer.errors import UserError
+from infer.theory.base import KINDS
+
+SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "surrogate", "output"}
 RUN_KEYS = {"name", "seed"}
 DATASET_KEYS = {"file", "covariance", "units", "spectra", "ell_min", "ell_max"}
 PARAM_KEYS = {"prior", "value", "guess", "spread", "tex"}
-SAMPLING_KEYS = {"walkers", "ensembles", "steps", "moves", "workers", "threads_per_worker",
+SAMPLING_KEYS = {"engine", "walkers", "ensembles", "steps", "moves", "workers", "threads_per_worker",
                  "checkpoint_steps", "checkpoint_minutes", "log_minutes"}
+SURROGATE_KEYS = {"design_points", "design_radius", "round_size", "defensive_weight", "t_dof", "t_scale",
+                  "khat_max", "min_ess_per_call", "max_exact", "max_refits", "batch", "evidence_draws",
+                  "method", "fit_starts"}
+#: How a run samples: "ensemble" (independent emcee ensembles on the exact posterior) or "surrogate"
+#: (the surrogate engine of `infer.sampling.engine`: exact posterior by importance correction).
+ENGINES = ("ensemble", "surrogate")
+SURROGATE_METHODS = ("auto", "poly1", "poly2", "poly3", "poly4", "gp-se-1", "gp-se-2", "gp-m52-1", "gp-m52-2")
 STOPPING_KEYS = {"rhat_below", "ess_above", "tau_multiple", "check_every", "time_limit", "min_steps"}
 OUTPUT_KEYS = {"chain", "summary"}
 MOVES = ("de-snooker", "stretch", "de")
 
 #: Keys whose change alters the posterior or the algorithm; refused on resume (see `posterior_diff`).
 FROZEN_PREFIXES = ("dataset.", "theory.", "parameters.", "sampling.walkers", "sampling.ensembles",
-                   "sampling.moves")
+                   "sampling.moves", "sampling.engine", "surrogate.")
+#: [surrogate] keys a resume may change (they bound the run, never change a value computed so far).
+RUN_CONTROL_SURROGATE_KEYS = ("surrogate.max_exact",)
 #: Theory keys that change speed only, never a prediction (the template model's simulated cost).
 RUN_CONTROL_THEORY_KEYS = ("theory.delay_seconds",)
 #: Keys under [parameters] that only change the starting ball or labels, never the posterior.
 COSMETIC_PARAM_KEYS = ("guess", "spread", "tex")
+
+#: Largest seed (stored as a signed 64-bit integer in the chain file).
+MAX_SEED = 2**63 - 1
+#: Longest duration anywhere in a run file or on the command line: one year, in seconds.
+MAX_SECONDS = 366 * 86400.0
+MAX_MINUTES = MAX_SECONDS / 60.0
+#: Smallest probability a truncated-normal prior may hold inside its range.
+MIN_PRIOR_MASS = 1e-12
+#: Ranges of the numeric run-control keys: (integer, low, high); low is exclusive for reals marked so.
+LIMITS = {
+    "sampling.walkers": (True, 2, 100_000),
+    "sampling.ensembles": (True, 1, 1024),
+    "sampling.steps": (True, 1, 10**9),
+    "sampling.workers": (True, 0, 4096),
+    "sampling.threads_per_worker": (True, 0, 1024),
+    "sampling.checkpoint_steps": (True, 1, 10**9),
+    "sampling.checkpoint_minutes": (False, 0.0, MAX_MINUTES),      # > 0
+    "sampling.log_minutes": (False, 0.0, MAX_MINUTES),             # > 0
+    "stopping.rhat_below": (False, 1.0, 100.0),                    # > 1
+    "stopping.ess_above": (False, 0.0, 1e12),
+    "stopping.tau_multiple": (False, 0.0, 1e6),
+    "stopping.check_every": (True, 1, 10**9),
+    "stopping.min_steps": (True, 1, 10**9),
+    "surrogate.design_points": (True, 0, 100_000),
+    "surrogate.design_radius": (False, 0.0, 20.0),               # > 0
+    "surrogate.round_size": (True, 8, 1_000_000),
+    "surrogate.defensive_weight": (False, 0.0, 0.9),             # > 0
+    "surrogate.t_dof": (False, 0.0, 1000.0),                     # > 0
+    "surrogate.t_scale": (False, 0.0, 100.0),                    # > 0
+    "surrogate.khat_max": (False, 0.0, 1.0),                     # > 0
+    "surrogate.min_ess_per_call": (False, 0.0, 1.0),
+    "surrogate.max_exact": (True, 1, 10**9),
+    "surrogate.max_refits": (True, 0, 1000),
+    "surrogate.batch": (True, 1, 100_000),
+    "surrogate.evidence_draws": (True, 1000, 10**8),
+    "surrogate.fit_starts": (True, 1, 100),
+}
+_OPEN_LOW = {"sampling.checkpoint_minutes", "sampling.log_minutes", "stopping.rhat_below", "surrogate.design_radius",
+             "surrogate.defensive_weight", "surrogate.t_dof", "surrogate.t_scale", "surrogate.khat_max"}
 
 
 @dataclass(frozen=True)
@@ -60,6 +119,7 @@ class Parameter:
 
 @dataclass(frozen=True)
 class Sampling:
+    engine: str = "ensemble"
     walkers: int = 32
     ensembles: int = 2
     steps: int = 5000
@@ -82,6 +142,28 @@ class Stopping:
 
 
 @dataclass(frozen=True)
+class Surrogate:
+    """``[surrogate]``: settings of the surrogate engine (meaning and defaults in `infer.sampling.engine`)."""
+    design_points: int = 0             # 0: automatic, (P+1)(P+2) + 4P
+    design_radius: float = 4.0         # σ of the Laplace approximation
+    round_size: int = 256              # exact calls per correction round (fewer once the target is near)
+    defensive_weight: float = 0.1      # α, share of the heavy-tailed proposal component
+    t_dof: float = 5.0                 # ν of that component
+    t_scale: float = 1.5               # its width in Laplace σ
+    khat_max: float = 0.7              # Pareto k̂ above this: weights unusable (Vehtari et al. 2024)
+    min_ess_per_call: float = 0.5      # a round below this refines the surrogate
+    max_exact: int = 20000             # exact calls at most
+    max_refits: int = 8                # surrogate refinements at most
+    batch: int = 32                    # exact calls per committed batch (a kill loses at most one)
+    evidence_draws: int = 40000        # cheap surrogate calls to normalise the surrogate posterior
+    method: str = "auto"               # surrogate regression (chosen by held-out Δχ² when "auto")
+    fit_starts: int = 1                # starts of the best fit
+
+    def design_size(self, P: int) -> int:
+        return self.design_points or (P + 1) * (P + 2) + 4 * P
+
+
+@dataclass(frozen=True)
 class Config:
     path: str                             # the run file, resolved
     text: str                             # its full text (stored in the chain file)
@@ -95,6 +177,7 @@ class Config:
     stopping: Stopping
     chain_path: str
     summary_dir: str
+    surrogate: Surrogate = Surrogate()
 
     @property
     def sampled(self) -> tuple[Parameter, ...]:
@@ -105,52 +188,43 @@ class Config:
         return {p.name: p.value for p in self.parameters if p.value is not None}
 
 
-def _check_keys(path, section, table, allowed):
-    if not isinstance(table, dict):
-        raise UserError(f"{path}: [{section}] must be a table")
-    for key in table:
-        if key not in allowed:
-            raise UserError(f"{path}: unknown key '{section}.{key}' (allowed: {', '.join(sorted(allowed))})")
-
-
-def _number(path, key, value, *, integer=False, low=None, high=None, low_open=False):
-    ok = isinstance(value, int) if integer else isinstance(value, (int, float))
-    if isinstance(value, bool) or not ok or (not integer and not math.isfinite(value)):
-        kind = "an integer" if integer else "a finite number"
-        raise UserError(f"{path}: '{key}' must be {kind}, got {value!r}")
-    if low is not None and (value <= low if low_open else value < low):
-        raise UserError(f"{path}: '{key}' must be {'>' if low_open else '>='} {low}, got {value!r}")
-    if high is not None and value > high:
-        raise UserError(f"{path}: '{key}' must be <= {high}, got {value!r}")
-    return value
-
-
-_DURATION = re.compile(r"^(?:(\d+)-)?(\d+):(\d{1,2}):(\d{1,2})$|^(\d+(?:\.\d+)?)\s*([smhd]?)$")
-
-
 def parse_duration(text, where="--time-limit") -> float:
-    """'47:30:00', '2-00:00:00' (days-h:m:s), '90m', '3600' or '1.5h' → seconds."""
-    if isinstance(text, (int, float)) and not isinstance(text, bool):
-        text = str(text)
-    m = _DURATION.match(str(text).strip()) if isinstance(text, str) else None
-    if not m:
-        raise UserError(f"{where}: cannot read duration {text!r} (use H:MM:SS, D-H:MM:SS, or 90m / 2h / 3600)")
-    if m.group(5) is not None:
-        scale = {"": 1, "s": 1, "m": 60, "h": 3600, "d": 86400}[m.group(6)]
-        seconds = float(m.group(5)) * scale
-    else:
-        days = int(m.group(1) or 0)
-        seconds = days * 86400 + int(m.group(2)) * 3600 + int(m.group(3)) * 60 + int(m.group(4))
-    if seconds <= 0:
-        raise UserError(f"{where}: duration must be positive, got {text!r}")
-    return seconds
+    """'47:30:00', '2-00:00:00' (days-h:m:s), '90m', '3600' or '1.5h' → seconds in (0, MAX_SECONDS]
+    (`infer.validate.duration`)."""
+    return validate.duration(where, text, high=MAX_SECONDS)
+
+
+def truncnormal_log_mass(mu: float, sd: float, lo: float, hi: float) -> float:
+    """ln Z, Z = Φ((hi−μ)/σ) − Φ((lo−μ)/σ), accurate in both tails (−∞ when Z underflows).
+
+    The range is mirrored into the lower tail, where ``log_ndtr`` keeps full relative precision, and
+    ln Z = ln Φ(b) + ln(−expm1(ln Φ(a) − ln Φ(b))) avoids the cancellation of two CDFs near 1."""
+    a, b = (lo - mu) / sd, (hi - mu) / sd
+    if a > 0:
+        a, b = -b, -a
+    la, lb = float(special.log_ndtr(a)), float(special.log_ndtr(b))
+    if not math.isfinite(lb) or not la < lb:
+        return -math.inf
+    return lb + math.log(-math.expm1(la - lb))
+
+
+def log_normalisation(prior: "Prior") -> float:
+    """The constant of the prior's log-density: −ln(b − a) for uniform, −ln(σ√(2π) Z) for a
+    (truncated) normal (Z = 1 untruncated). Finite for every prior `parse` accepts."""
+    if prior.kind == "uniform":
+        a, b = prior.args
+        return -math.log(b - a) if math.isfinite(b - a) and b > a else -math.inf
+    mu, sd = prior.args[:2]
+    log_z = truncnormal_log_mass(mu, sd, *prior.args[2:]) if prior.kind == "truncnormal" else 0.0
+    return -(math.log(sd * math.sqrt(2.0 * math.pi)) + log_z)     # σ√(2π) overflowing: −∞
 
 
 def _prior(path, name, spec) -> Prior:
     key = f"parameters.{name}.prior"
     if not isinstance(spec, dict) or not spec:
         raise UserError(f"{path}: '{key}' must be a table such as {{ uniform = [0.0, 1.0] }} "
-                        "or {{ normal = [mean, sd] }} (optionally with range = [lo, hi])")
+                        "or { normal = [mean, sd] } (optionally with range = [lo, hi]), "
+                        f"got {validate.show(spec)}")
     kinds = [k for k in spec if k in ("uniform", "normal")]
     extra = [k for k in spec if k not in ("uniform", "normal", "range")]
     if len(kinds) != 1 or extra:
@@ -159,52 +233,77 @@ def _prior(path, name, spec) -> Prior:
     kind = kinds[0]
     args = spec[kind]
     if not (isinstance(args, list) and len(args) == 2):
-        raise UserError(f"{path}: '{key}.{kind}' must be a list of two numbers, got {args!r}")
-    a, b = (_number(path, f"{key}.{kind}", v) for v in args)
+        raise UserError(f"{path}: '{key}.{kind}' must be a list of two numbers, got {validate.show(args)}")
+    a, b = (validate.number(path, f"{key}.{kind}", v) for v in args)
     if kind == "uniform":
         if "range" in spec:
             raise UserError(f"{path}: '{key}': 'range' goes with 'normal' only")
         if not a < b:
             raise UserError(f"{path}: '{key}.uniform' needs lower < upper, got [{a}, {b}]")
+        if not math.isfinite(float(b) - float(a)):
+            raise UserError(f"{path}: '{key}.uniform' = [{a}, {b}] is too wide: its width overflows a "
+                            "double; narrow the range")
         return Prior("uniform", (float(a), float(b)))
     if not b > 0:
         raise UserError(f"{path}: '{key}.normal' needs a positive standard deviation, got {b}")
     if "range" in spec:
         rng = spec["range"]
         if not (isinstance(rng, list) and len(rng) == 2):
-            raise UserError(f"{path}: '{key}.range' must be [lower, upper], got {rng!r}")
-        lo, hi = (_number(path, f"{key}.range", v) for v in rng)
+            raise UserError(f"{path}: '{key}.range' must be [lower, upper], got {validate.show(rng)}")
+        lo, hi = (validate.number(path, f"{key}.range", v) for v in rng)
         if not lo < hi:
             raise UserError(f"{path}: '{key}.range' needs lower < upper, got [{lo}, {hi}]")
-        return Prior("truncnormal", (float(a), float(b), float(lo), float(hi)))
-    return Prior("normal", (float(a), float(b)))
+        if not math.isfinite(float(hi) - float(lo)):
+            raise UserError(f"{path}: '{key}.range' = [{lo}, {hi}] is too wide: its width overflows a "
+                            "double; narrow the range")
+        prior = Prior("truncnormal", (float(a), float(b), float(lo), float(hi)))
+        log_z = truncnormal_log_mass(*prior.args)
+        if not log_z >= math.log(MIN_PRIOR_MASS):
+            share = f"e^{log_z:.4g}" if math.isfinite(log_z) else "0"
+            raise UserError(f"{path}: '{key}': the range [{lo}, {hi}] holds {share} of the probability of "
+                            f"normal = [{a}, {b}] (less than {MIN_PRIOR_MASS:g}): no usable prior mass; "
+                            "move the range or the mean")
+    else:
+        prior = Prior("normal", (float(a), float(b)))
+    if not math.isfinite(log_normalisation(prior)):
+        raise UserError(f"{path}: '{key}.normal' standard deviation {b} is too large or too small for "
+                        "a finite prior density")
+    return prior
 
 
 def _parameter(path, name, table) -> Parameter:
     if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_]*", name):
         raise UserError(f"{path}: parameter name '{name}' must be letters, digits and underscores")
-    _check_keys(path, f"parameters.{name}", table, PARAM_KEYS)
-    tex = table.get("tex", name)
-    if not isinstance(tex, str):
-        raise UserError(f"{path}: 'parameters.{name}.tex' must be a string")
+    validate.check_keys(path, f"parameters.{name}", table, PARAM_KEYS)
+    tex = validate.text(path, f"parameters.{name}.tex", table.get("tex", name), empty=True, line=True)
     if "value" in table:
         if "prior" in table:
             raise UserError(f"{path}: 'parameters.{name}' has both 'value' (fixed) and 'prior' (sampled)")
-        return Parameter(name, None, float(_number(path, f"parameters.{name}.value", table["value"])),
+        return Parameter(name, None, float(validate.number(path, f"parameters.{name}.value", table["value"])),
                          None, None, tex)
     if "prior" not in table:
         raise UserError(f"{path}: 'parameters.{name}' needs a 'prior' (sampled) or a 'value' (fixed)")
     prior = _prior(path, name, table["prior"])
     lo, hi = support(prior)
     if prior.kind == "uniform":
-        default_guess, default_spread = 0.5 * (lo + hi), 0.01 * (hi - lo)
-    else:
+        mid = 0.5 * (lo + hi) if math.isfinite(lo + hi) else lo + 0.5 * (hi - lo)
+        default_guess, default_spread = mid, 0.01 * (hi - lo)
+    elif lo < prior.args[0] < hi:
         default_guess, default_spread = prior.args[0], 0.1 * prior.args[1]
-    guess = float(_number(path, f"parameters.{name}.guess", table.get("guess", default_guess)))
-    spread = float(_number(path, f"parameters.{name}.spread", table.get("spread", default_spread),
+    else:                                   # a truncated normal whose mean lies outside its range
+        default_guess, default_spread = lo + 0.5 * (hi - lo), min(0.1 * prior.args[1], 0.01 * (hi - lo))
+    guess = float(validate.number(path, f"parameters.{name}.guess", table.get("guess", default_guess)))
+    spread = float(validate.number(path, f"parameters.{name}.spread", table.get("spread", default_spread),
                            low=0, low_open=True))
     if not lo < guess < hi:
         raise UserError(f"{path}: 'parameters.{name}.guess' = {guess} lies outside the prior support [{lo}, {hi}]")
+    # A starting ball much wider than the prior puts most draws outside it, where they are replaced by
+    # the guess: walkers would start on one point. Bounded priors: spread ≤ width; normal: ≤ 10 σ.
+    widest = (hi - lo) if prior.kind != "normal" else 10.0 * prior.args[1]
+    if spread > widest:
+        raise UserError(f"{path}: 'parameters.{name}.spread' = {spread:g} is wider than the prior "
+                        f"({'its width' if prior.kind != 'normal' else '10 σ'} is {widest:g}); the walkers "
+                        "would start on one point")
     return Parameter(name, prior, None, guess, spread, tex)
 
 
@@ -217,10 +316,26 @@ def support(prior: Prior) -> tuple[float, float]:
 
 
 def _resolve(base: Path, value, path, key) -> str:
-    if not isinstance(value, str) or not value:
-        raise UserError(f"{path}: '{key}' must be a non-empty path string")
+    if not isinstance(value, str) or not value.strip():
+        raise UserError(f"{path}: '{key}' must be a non-empty path string, got {validate.show(value)}")
+    if "\0" in value:
+        raise UserError(f"{path}: '{key}' holds a NUL character")
     p = Path(os.path.expandvars(os.path.expanduser(value)))
-    return str((base / p).resolve() if not p.is_absolute() else p.resolve())
+    try:
+        return str((base / p).resolve() if not p.is_absolute() else p.resolve())
+    except RuntimeError:                    # Python < 3.13: a symlink loop
+        raise UserError(f"{path}: '{key}' = {value!r} is a loop of symbolic links") from None
+    except (OSError, ValueError) as exc:
+        raise UserError(f"{path}: '{key}' = {value!r} cannot be resolved "
+                        f"({getattr(exc, 'strerror', None) or exc})") from None
+
+
+def _limited(path, key, value):
+    """A run-control number checked against `LIMITS` (ints stay int, reals become float)."""
+    integer, low, high = LIMITS[key]
+    out = validate.number(path, key, value, integer=integer, low=low, high=high,
+                          low_open=key in _OPEN_LOW)
+    return out if integer else float(out)
 
 
 def _dataclass_from(path, section, table, cls, rules):
@@ -230,48 +345,67 @@ def _dataclass_from(path, section, table, cls, rules):
     return cls(**values)
 
 
+def _dataset(path, ds, base) -> dict:
+    validate.check_keys(path, "dataset", ds, DATASET_KEYS)
+    if "file" not in ds:
+        raise UserError(f"{path}: missing key 'dataset.file'")
+    dataset = dict(ds)
+    dataset["file"] = _resolve(base, ds["file"], path, "dataset.file")
+    plain = Path(dataset["file"]).suffix.lower() in (".txt", ".dat", ".csv")
+    if "covariance" in ds:
+        if not plain:
+            raise UserError(f"{path}: 'dataset.covariance' is only read for a plain-text dataset "
+                            f"(.txt/.dat/.csv); {Path(dataset['file']).name} holds its own covariance")
+        dataset["covariance"] = _resolve(base, ds["covariance"], path, "dataset.covariance")
+    elif plain:
+        raise UserError(f"{path}: 'dataset.covariance' is missing: a plain-text dataset needs a "
+                        "covariance file (.npy or text)")
+    if "units" in ds:
+        validate.choice(path, "dataset.units", ds["units"], tuple(UNITS))
+    elif plain:
+        raise UserError(f"{path}: 'dataset.units' is missing: a plain-text dataset must declare its "
+                        f"units (one of {', '.join(UNITS)})")
+    if "spectra" in ds:
+        dataset["spectra"] = list(validate.subset(path, "dataset.spectra", ds["spectra"], KINDS))
+    for key in ("ell_min", "ell_max"):
+        if key in ds:
+            validate.number(path, f"dataset.{key}", ds[key], integer=True, low=2, high=MAX_ELL)
+    if "ell_min" in ds and "ell_max" in ds and ds["ell_min"] > ds["ell_max"]:
+        raise UserError(f"{path}: 'dataset.ell_min' = {ds['ell_min']} is above 'dataset.ell_max' = "
+                        f"{ds['ell_max']}: no band can be kept")
+    return dataset
+
+
 def parse(text: str, path: str) -> Config:
     """Parse and validate run-file text; ``path`` is used for messages and relative paths."""
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
-        raise UserError(f"{path}: not valid TOML ({err})") from None
+        raise UserError(f"{path}: not valid TOML ({' '.join(str(err).split())})") from None
     for section in raw:
         if section not in SECTIONS:
             raise UserError(f"{path}: unknown section [{section}] (allowed: {', '.join(sorted(SECTIONS))})")
     base = Path(path).resolve().parent
 
     run = raw.get("run", {})
-    _check_keys(path, "run", run, RUN_KEYS)
+    validate.check_keys(path, "run", run, RUN_KEYS)
     name = run.get("name", Path(path).stem)
-    if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.-]*", name):
-        raise UserError(f"{path}: 'run.name' must be letters, digits, '.', '_' or '-', got {name!r}")
-    seed = _number(path, "run.seed", run.get("seed", 1), integer=True, low=0)
+    if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.-]{0,199}", name):
+        raise UserError(f"{path}: 'run.name' must be 1–200 letters, digits, '.', '_' or '-', "
+                        f"got {validate.show(name)}")
+    seed = validate.number(path, "run.seed", run.get("seed", 1), integer=True, low=0, high=MAX_SEED)
 
     ds = raw.get("dataset")
     if ds is None:
         raise UserError(f"{path}: missing section [dataset]")
-    _check_keys(path, "dataset", ds, DATASET_KEYS)
-    if "file" not in ds:
-        raise UserError(f"{path}: missing key 'dataset.file'")
-    dataset = dict(ds)
-    dataset["file"] = _resolve(base, ds["file"], path, "dataset.file")
-    if "covariance" in ds:
-        dataset["covariance"] = _resolve(base, ds["covariance"], path, "dataset.covariance")
-    if "spectra" in ds:
-        sp = ds["spectra"]
-        if not (isinstance(sp, list) and sp and all(s in ("TT", "TE", "EE", "BB") for s in sp)):
-            raise UserError(f"{path}: 'dataset.spectra' must be a list drawn from TT, TE, EE, BB, got {sp!r}")
-    for key in ("ell_min", "ell_max"):
-        if key in ds:
-            _number(path, f"dataset.{key}", ds[key], integer=True, low=2)
-    units = ("Dl_uK2", "Dl_K2", "Cl_uK2", "Cl_K2")
-    if "units" in ds and ds["units"] not in units:
-        raise UserError(f"{path}: 'dataset.units' must be one of {', '.join(units)}, got {ds['units']!r}")
+    dataset = _dataset(path, ds, base)
 
     theory = raw.get("theory")
     if theory is None or not isinstance(theory, dict) or "code" not in theory:
         raise UserError(f"{path}: missing section [theory] with key 'code' (\"camb\" or \"templates\")")
+    validate.text(path, "theory.code", theory["code"])
+    from infer.theory import check_settings as check_theory_settings    # types and ranges, no theory import
+    check_theory_settings(theory, f"{path}: [theory]")
 
     params_raw = raw.get("parameters")
     if not isinstance(params_raw, dict) or not params_raw:
@@ -280,50 +414,71 @@ def parse(text: str, path: str) -> Config:
     if not any(p.value is None for p in parameters):
         raise UserError(f"{path}: no sampled parameter (every [parameters.NAME] has a fixed 'value')")
 
-    def integer(low):
-        return lambda p, k, v: _number(p, k, v, integer=True, low=low)
-
-    def positive(p, k, v):
-        return float(_number(p, k, v, low=0, low_open=True))
-
     def moves(p, k, v):
-        if v not in MOVES:
-            raise UserError(f"{p}: '{k}' must be one of {', '.join(MOVES)}, got {v!r}")
-        return v
+        return validate.choice(p, k, v, MOVES)
+
+    def engine(p, k, v):
+        return validate.choice(p, k, v, ENGINES)
 
     sm = raw.get("sampling", {})
-    _check_keys(path, "sampling", sm, SAMPLING_KEYS)
-    sampling = _dataclass_from(path, "sampling", sm, Sampling, {
-        "walkers": integer(2), "ensembles": integer(1), "steps": integer(1), "moves": moves,
-        "workers": integer(0), "threads_per_worker": integer(0), "checkpoint_steps": integer(1),
-        "checkpoint_minutes": positive, "log_minutes": positive})
+    validate.check_keys(path, "sampling", sm, SAMPLING_KEYS)
+    rules = {key: _limited for key in SAMPLING_KEYS if key not in ("moves", "engine")}
+    sampling = _dataclass_from(path, "sampling", sm, Sampling, {**rules, "moves": moves, "engine": engine})
     n_sampled = sum(p.value is None for p in parameters)
     if sampling.walkers < 2 * n_sampled or sampling.walkers % 2:
         raise UserError(f"{path}: 'sampling.walkers' must be even and at least twice the number of sampled "
                         f"parameters ({2 * n_sampled}), got {sampling.walkers}")
 
     st = raw.get("stopping", {})
-    _check_keys(path, "stopping", st, STOPPING_KEYS)
+    validate.check_keys(path, "stopping", st, STOPPING_KEYS)
     st = dict(st)
     if "time_limit" in st:
         st["time_limit"] = parse_duration(st["time_limit"], f"{path}: 'stopping.time_limit'")
-    stopping = _dataclass_from(path, "stopping", st, Stopping, {
-        "rhat_below": lambda p, k, v: float(_number(p, k, v, low=1.0, low_open=True)),
-        "ess_above": lambda p, k, v: float(_number(p, k, v, low=0)),
-        "tau_multiple": lambda p, k, v: float(_number(p, k, v, low=0)),
-        "check_every": integer(1), "min_steps": integer(1),
-        "time_limit": lambda p, k, v: v})
+    rules = {key: _limited for key in STOPPING_KEYS if key != "time_limit"}
+    stopping = _dataclass_from(path, "stopping", st, Stopping, {**rules, "time_limit": lambda p, k, v: v})
+
+    surrogate = _surrogate(path, raw.get("surrogate", {}), sampling, n_sampled)
 
     out = raw.get("output", {})
-    _check_keys(path, "output", out, OUTPUT_KEYS)
+    validate.check_keys(path, "output", out, OUTPUT_KEYS)
     chain_path = _resolve(base, out["chain"], path, "output.chain") if "chain" in out \
         else str((Path.cwd() / "chains" / f"{name}.h5").resolve())
     if not chain_path.endswith(".h5"):
         raise UserError(f"{path}: 'output.chain' must end in .h5, got {out['chain']!r}")
+    for key in ("file", "covariance"):
+        if dataset.get(key) == chain_path:
+            raise UserError(f"{path}: 'output.chain' is the dataset's {'file' if key == 'file' else key} "
+                            f"{chain_path}; a chain must never be written over its input")
     summary_dir = _resolve(base, out["summary"], path, "output.summary") if "summary" in out \
         else chain_path[:-3]
+    for key in ("file", "covariance"):
+        if dataset.get(key) == summary_dir:
+            raise UserError(f"{path}: 'output.summary' is the dataset's {key} {summary_dir}")
     return Config(str(Path(path).resolve()), text, raw, name, seed, dataset, dict(theory), parameters,
-                  sampling, stopping, chain_path, summary_dir)
+                  sampling, stopping, chain_path, summary_dir, surrogate)
+
+
+def _surrogate(path, table, sampling: Sampling, n_sampled: int) -> Surrogate:
+    """``[surrogate]`` checked: types and ranges, and settings that cannot work for ``n_sampled``
+    parameters (a design too small to fit even a linear surrogate, a batch larger than a round)."""
+    validate.check_keys(path, "surrogate", table, SURROGATE_KEYS)
+    if table and sampling.engine != "surrogate":
+        raise UserError(f"{path}: [surrogate] is given but 'sampling.engine' is {sampling.engine!r}; "
+                        "set sampling.engine = \"surrogate\" or remove [surrogate]")
+    rules = {key: _limited for key in SURROGATE_KEYS if key != "method"}
+    rules["method"] = lambda p, k, v: validate.choice(p, k, v, SURROGATE_METHODS)
+    s = _dataclass_from(path, "surrogate", table, Surrogate, rules)
+    if s.design_points and s.design_points < n_sampled + 2:
+        raise UserError(f"{path}: 'surrogate.design_points' = {s.design_points} cannot fit a surrogate of "
+                        f"{n_sampled} parameters: use at least {n_sampled + 2} (or 0 for the automatic "
+                        f"{s.design_size(n_sampled)})")
+    if s.batch > s.round_size:
+        raise UserError(f"{path}: 'surrogate.batch' = {s.batch} exceeds 'surrogate.round_size' = {s.round_size}")
+    if s.max_exact < s.design_size(n_sampled) + s.round_size:
+        raise UserError(f"{path}: 'surrogate.max_exact' = {s.max_exact} leaves no room for one correction round "
+                        f"after the design ({s.design_size(n_sampled)} points) and the fit: use at least "
+                        f"{s.design_size(n_sampled) + s.round_size + 50 * n_sampled}")
+    return s
 
 
 def load(path) -> Config:
@@ -367,8 +522,9 @@ def diff(old: Config, new: Config) -> tuple[list[str], list[str]]:
         if va == vb:
             continue
         line = f"{key}: {va!r} → {vb!r}"
-        cosmetic = (key.startswith("parameters.") and key.split(".")[2] in COSMETIC_PARAM_KEYS) or \
-            key in RUN_CONTROL_THEORY_KEYS
+        cosmetic = (key.startswith("parameters.") and key.split(".")[2] in COSMETIC_PARAM_KEYS
+                    and not (old.sampling.engine == "surrogate" and key.split(".")[2] != "tex")) or \
+            key in RUN_CONTROL_THEORY_KEYS or key in RUN_CONTROL_SURROGATE_KEYS
         if key.startswith(FROZEN_PREFIXES) and not cosmetic:
             refused.append(line)
         else:

@@ -11,6 +11,7 @@ EXIT_INTERNAL = 1    # a bug: unexpected exception (traceback shown with --debug
 EXIT_USAGE = 2       # bad input: config, dataset, chain file or command line
 EXIT_PAUSED = 75     # stopped early by a signal or the wall-time budget; checkpoint written; resume later
                      # (75 is EX_TEMPFAIL of sysexits.h: "try again later")
+EXIT_PIPE = 141      # standard output closed by the reader (128 + SIGPIPE, the shell's convention)
 
 
 class UserError(Exception):

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from infer.data import bandpowers as dataset
+from infer import data as dataset
 from infer.forecast import mock
 from infer.theory.templates import NAMES, TemplateTheory
 

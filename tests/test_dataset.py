@@ -1,4 +1,4 @@
-"""Tests of infer.dataset: the HDF5 layout, the plain-text route, unit conversion, checks, writing.
+"""Tests of infer.data: the HDF5 layout, the plain-text route, unit conversion, checks, writing.
 
 Files are written here by hand (h5py, numpy, text) following the documented layout, so the reader is
 checked against the specification, not only against our own writer. Spectra are invented smooth
@@ -14,7 +14,7 @@ import h5py
 import numpy as np
 import pytest
 
-from infer.data import bandpowers as dataset
+from infer import data as dataset
 from infer.errors import UserError
 
 GRID = np.arange(0, 131)                      # windows/ell: starts at 0 with zero weight at ℓ < 2
@@ -405,6 +405,8 @@ PLAIN_CASES = [
     ("cov-missing", None, None, {"covariance": None}, "table", "covariance file"),
     ("cov-absent", None, None, {"covariance": "absent.npy"}, "absent.npy", "not found"),
     ("theory-reach", None, None, {"theory_ell_max": 60}, "table", "needs ℓ up to 69"),
+    ("ell-absurd", lambda t: t.replace("TT 30 49", "TT 30 1e12"), None, {}, "table",
+     "beyond the largest multipole infer reads (100000)"),
 ]
 
 
@@ -455,7 +457,7 @@ def test_write_crash_leaves_no_partial_file(tmp_path, monkeypatch):
     def crash(fd):
         raise RuntimeError("simulated crash during write")
 
-    monkeypatch.setattr(dataset.os, "fsync", crash)
+    monkeypatch.setattr(os, "fsync", crash)
     with pytest.raises(RuntimeError):
         dataset.write(bp.cut(spectra=["EE"]), out, overwrite=True)
     with pytest.raises(RuntimeError):
@@ -484,3 +486,92 @@ def test_from_arrays_builds_checked_top_hat_dataset():
     assert bp.ell_max_needed == 21 and len(bp.sha256) == 64
     with pytest.raises(UserError, match="covariance: not positive definite"):
         dataset.from_arrays(kind=["TT"], ell_lo=[2], ell_hi=[11], value=[1.0], covariance=[[-1.0]])
+
+
+def _text_as_npy(path):
+    path.write_text("1 0\n0 1\n")
+
+
+def _strings_npy(path):
+    np.save(path, np.array([["a"] * 8] * 8))
+
+
+def _truncated_npy(path):
+    np.save(path, np.eye(8))
+    path.write_bytes(path.read_bytes()[:-8])
+
+
+def _empty_text(path):
+    path.write_text("")
+
+
+@pytest.mark.parametrize("name, make, words", [
+    ("cov.npy", _text_as_npy, "not a NumPy .npy file"),
+    ("cov.npy", _strings_npy, "holds <U1 values, not numbers"),
+    ("cov.npy", _truncated_npy, "truncated or damaged"),
+    ("cov.txt", _empty_text, "holds no numbers"),
+], ids=["text-named-npy", "strings", "truncated", "empty-text"])
+def test_covariance_file_problems_are_named(tmp_path, name, make, words):
+    # Each says what is really wrong (not "holds Python objects" for every bad .npy), in one line and
+    # without a NumPy warning.
+    table, *_ = write_plain(tmp_path)
+    cov = tmp_path / name
+    make(cov)
+    import warnings
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with pytest.raises(UserError) as err:
+            dataset.load(table, covariance=cov, units="Dl_uK2")
+    msg = str(err.value)
+    assert msg.startswith(f"{cov}: covariance: ") and words in msg and "\n" not in msg, msg
+
+
+def test_non_regular_and_looping_paths(tmp_path):
+    os.symlink(tmp_path / "b.h5", tmp_path / "a.h5")
+    os.symlink(tmp_path / "a.h5", tmp_path / "b.h5")
+    with pytest.raises(UserError, match="symbolic links") as err:
+        dataset.load(tmp_path / "a.h5")
+    assert str(err.value).startswith(str(tmp_path / "a.h5"))
+    os.symlink("/dev/null", tmp_path / "null.h5")
+    with pytest.raises(UserError, match="not a regular file"):
+        dataset.load(tmp_path / "null.h5")
+
+
+def test_writer_uses_the_atomic_helper(tmp_path, monkeypatch):
+    # One home for atomic writes (infer.atomic.write_atomic, with fsync): the dataset writer goes
+    # through it, so a refused overwrite and a crash behave as that helper promises.
+    import infer.atomic
+    import infer.data.hdf5
+    seen = []
+    real = infer.atomic.write_atomic
+
+    def spy(path, fill, *, overwrite=True):
+        seen.append((str(path), overwrite))
+        return real(path, fill, overwrite=overwrite)
+
+    monkeypatch.setattr(infer.data.hdf5, "write_atomic", spy)
+    bp = dataset.load(write_raw(tmp_path / "d.h5", *good_fields()))
+    dataset.write(bp, tmp_path / "out.h5")
+    assert seen == [(str(tmp_path / "out.h5"), False)]
+
+
+def test_unreadable_dataset_and_covariance(tmp_path, monkeypatch):
+    # Permission bits do not stop root (the test machine's user), so the refusal is simulated at the
+    # one place files are read.
+    import pathlib
+    h5 = write_raw(tmp_path / "d.h5", *good_fields())
+    table, cov_path, *_ = write_plain(tmp_path)
+    real = pathlib.Path.read_bytes
+
+    def denied(self):
+        if self.name in ("d.h5", cov_path.name):
+            raise PermissionError(13, "Permission denied")
+        return real(self)
+
+    monkeypatch.setattr(pathlib.Path, "read_bytes", denied)
+    with pytest.raises(UserError, match=r"dataset file cannot be read \(permission denied\)") as err:
+        dataset.load(h5)
+    assert str(err.value).startswith(str(h5))
+    with pytest.raises(UserError, match=r"covariance file cannot be read \(permission denied\)") as err:
+        dataset.load(table, covariance=cov_path, units="Dl_uK2")
+    assert str(err.value).startswith(str(cov_path))

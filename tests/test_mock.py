@@ -1,4 +1,4 @@
-"""Tests of infer.mock: Knox covariance, noise model, mock draws, experiment spec, Fisher matrix.
+"""Tests of infer.forecast (experiment, knox, mock, fisher): Knox covariance, noise model, mock draws, experiment spec, Fisher matrix.
 
 Each check names its external reference beside it. Spectra here are invented smooth analytic shapes
 (no Boltzmann code): the checks concern the covariance and the generator, not cosmology.
@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from scipy import constants, stats
 
-from infer.data import bandpowers as dataset
-from infer.forecast import mock
+from infer import data as dataset
+from infer import forecast as mock
 from infer.errors import UserError
 from infer.theory.base import Spectra
 

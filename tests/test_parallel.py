@@ -138,9 +138,9 @@ def test_pool_of_three_equals_serial(folder, quick_data, serial_chain):
 
 # -- threads per evaluation ------------------------------------------------------------------------------
 def test_threads_never_depend_on_the_worker_count_and_oversubscription_is_found(monkeypatch):
-    """CAMB's spectra differ in the last bits between OpenMP thread counts (tests/bench_parallel.py checks
+    """CAMB's spectra differ in the last bits between OpenMP thread counts (benchmarks/bench_parallel.py checks
     it), so the thread count per evaluation must not follow the number of workers or ranks."""
-    from infer.parallel.evaluate import threads_for
+    from infer.parallel import threads_for
     assert threads_for(1) == threads_for(2) == threads_for(64) == 1
     assert threads_for(64, requested=4) == 4                             # [sampling] threads_per_worker
     # rank 0 (driver, not counted) and ranks 1–3 share node a's 8 cores; rank 4 has node b's 4 cores;
@@ -215,6 +215,13 @@ def test_mpi_bad_input_is_one_line_and_exit_2(folder, quick_data):
     lines = [line for line in err.splitlines() if line.strip()]
     assert len(lines) == 1 and lines[0].startswith("infer: error:") and "no_such_bandpowers.h5" in lines[0], err
     assert not chain.exists()
+
+
+def test_mpi_command_line_error_is_one_line_not_one_per_rank(folder):
+    code, out, err = launch(3, "check", str(folder / "x.toml"), "--calls", "0")
+    assert code == EXIT_USAGE
+    lines = [line for line in err.splitlines() if line.strip()]
+    assert len(lines) == 1 and lines[0].startswith("infer: error:") and "--calls" in lines[0], err
 
 
 def _steps_in(chain: Path) -> int:

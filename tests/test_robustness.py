@@ -35,10 +35,12 @@ import pytest
 from infer import config
 from infer.cli import main
 from infer.errors import EXIT_PAUSED, ChainFileError, UserError
-from infer.parallel.evaluate import InProcess, ProcessPool
+from infer.model.posterior import PosteriorFactory
+from infer.parallel import InProcess, ProcessPool
 from infer.model.posterior import Posterior
 from infer.store.salvage import lookup3, salvage
-from infer.sampling.driver import Driver, starting_ball
+from infer.sampling.driver import Driver
+from infer.sampling.start import starting_ball
 from infer.store.chainfile import DRAWS, ChainStore
 
 from conftest import quick_config_text
@@ -123,14 +125,13 @@ def make_chain_without_running(cfg_path: Path, chain: Path):
     theory = {k: v for k, v in slow.theory.items() if k != "delay_seconds"}
     fast = dataclasses.replace(slow, theory=theory)
     post = Posterior(fast)
-    start, rng = starting_ball(fast, InProcess(post), len(post.blob_names))
+    start = starting_ball(fast, InProcess(post), post.blob_names)
     provenance = {"config_text": slow.text, "config_path": slow.path, "run_name": slow.name, "seed": slow.seed,
                   "dataset_file": slow.dataset["file"], "dataset_sha256": post.data.sha256,
                   "experiment": post.data.experiment, "model": json.dumps(post.describe(), default=str),
                   "versions": "{}", "host": "test"}
     ChainStore(str(chain)).create(names=post.names, derived_names=post.derived_names, tex={},
-                                  bounds=post.priors.bounds, ensembles=slow.sampling.ensembles,
-                                  walkers=slow.sampling.walkers, start=start, rng=rng, provenance=provenance)
+                                  bounds=post.priors.bounds, start=start, provenance=provenance)
     return slow
 
 
@@ -317,7 +318,7 @@ def test_time_limit_abandons_a_theory_call_that_would_overrun_it(write_config, t
     cfg = make_chain_without_running(cfg_path, chain)
     store = ChainStore(str(chain))
     t0 = time.monotonic()
-    pool = ProcessPool(cfg, 1, 3)
+    pool = ProcessPool(PosteriorFactory(cfg), 1)
     try:
         out = Driver(cfg, store, pool, store.read(), interactive=False).run(10, time_limit=4.0, clock_start=t0)
         abandoned = not pool.workers[0].ready        # the busy worker was killed: a call was given up
@@ -472,7 +473,7 @@ def same(a, b):
     if a.samples.names != b.samples.names or a.samples.tex != b.samples.tex: return False
     if a.samples.bounds != b.samples.bounds or a.rejections != b.rejections: return False
     arrays = [(getattr(a.samples, k), getattr(b.samples, k)) for k in DRAWS]
-    arrays += [(a.start[k], b.start[k]) for k in a.start]
+    arrays += [(getattr(a.start, k), getattr(b.start, k)) for k in DRAWS]
     arrays += [(a.convergence[k], b.convergence[k]) for k in a.convergence]
     arrays += [(x[1], y[1]) for x, y in zip(a.rng, b.rng)]
     same_rng = [r[2:] for r in a.rng] == [r[2:] for r in b.rng]
@@ -601,7 +602,7 @@ def test_disk_full_during_a_checkpoint_is_one_clear_line_and_the_chain_stays_int
             with pytest.raises(ChainFileError, match=r"cannot write the checkpoint \(No space left on device\); "
                                                      "the file on disk still holds the previous checkpoint"):
                 for i in range(200):
-                    store.append(**block, rng=st.rng, events=[{"i": i}])
+                    store.append(block, st.rng, events=[{"i": i}])
                     n += 50
             assert store.read().steps_done == n and not strays(small)
         finally:
@@ -682,8 +683,7 @@ def test_read_only_and_missing_folders_give_one_line(write_config, tmp_path, mon
     shutil.rmtree(folder)
     with pytest.raises(ChainFileError, match="cannot write the checkpoint .*the chain file or its folder has "
                                              "disappeared"):
-        store.append(position=st.samples.position[:1], log_post=st.samples.log_post[:1],
-                     log_like=st.samples.log_like[:1], derived=st.samples.derived[:1], rng=st.rng)
+        store.append(st.samples.head(1).draws, st.rng)
     assert main(["resume", str(chain)]) == 2
     assert_one_line_error(capsys.readouterr().err, f"{chain}: no such chain file")
 

@@ -1,4 +1,4 @@
-"""Marginal constraints, tables and figures (infer.summary, infer.plots).
+"""Marginal constraints, tables, figures and summary files (infer.analysis.marginals, infer.report).
 
 References used below:
 * scipy.stats (PyPI reference library): distributions' ppf/pdf, ``tstd``, ``mstats.mquantiles``.
@@ -18,11 +18,12 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from infer.analysis import diagnostics
-from infer.report import figures as plots
-from infer.report import summary
-from infer.errors import UserError
+from infer.analysis import burnin, diagnostics, marginals
 from infer.analysis.samples import Samples
+from infer.config import Stopping
+from infer.errors import UserError
+from infer.report import figures as plots
+from infer.report import rounding, summary, tables
 
 STEPS, ENS, WALK = 400, 4, 25          # 40 000 independent draws
 
@@ -58,16 +59,20 @@ def known():
                 meta={"run": "known-distributions"})
     dists = {"g1": stats.norm(0.5, 0.1), "g2": stats.norm(-1.0, 0.2), "skew": skew, "edge": edge,
              "edge_hi": edge_hi, "flat": flat, "g_sum": stats.norm(-0.5, np.sqrt(0.01 + 0.04 + 2 * 0.006))}
-    cons, info = summary.constraints(s)
+    cons, info = marginals.constraints(s)
     return s, dists, {c.name: c for c in cons}, info
 
 
 def test_burn_in_and_pooled_moments(known):
     s, _, cons, info = known
     # Independent draws have τ = 1 by definition (common practice), so 5τ burn-in is a handful of steps;
-    # the number must be what diagnostics.burn_in gives for the largest measured τ.
-    taus = [diagnostics.autocorr_time(s.column(n).reshape(STEPS, -1).T) for n in s.names]
-    assert info["burn"] == diagnostics.burn_in(max(taus), STEPS) and info["burn"] <= 10
+    # the number is the one rule's (burnin.choose): τ_max over every sampled and derived quantity,
+    # the same burn-in the stopping rule uses.
+    taus = [diagnostics.autocorr_time(s.column(n).reshape(STEPS, -1).T) for n in s.all_names]
+    assert info["burn"] == diagnostics.burn_in(max(taus), STEPS, factor=burnin.BURN_FACTOR) <= 10
+    from infer.sampling.stopping import assess
+    assert info["burn"] == burnin.choose(s).burn == assess(s, Stopping()).burn
+    assert info["ess_target"] == Stopping().ess_above and info["rhat_target"] == Stopping().rhat_below
     assert info["draws"] == (STEPS - info["burn"]) * ENS * WALK
     kept = s.after(info["burn"])
     for name, c in cons.items():
@@ -118,9 +123,9 @@ def test_no_limit_for_narrow_peak_near_an_edge():
     # a half-normal is a limit whatever its width. Reference draws from scipy.stats.
     rng = np.random.default_rng(5)
     near = stats.norm(0.031, 0.007).rvs(size=20000, random_state=rng)
-    assert summary.edge_limit(near, 0.01, 0.8) is None
+    assert marginals.edge_limit(near, 0.01, 0.8) is None
     piled = stats.halfnorm(scale=0.002).rvs(size=20000, random_state=rng)
-    assert summary.edge_limit(piled, 0.0, 0.8)[0] == "upper"
+    assert marginals.edge_limit(piled, 0.0, 0.8)[0] == "upper"
 
 
 def _latex_row(tex: str, label: str) -> str:
@@ -129,8 +134,9 @@ def _latex_row(tex: str, label: str) -> str:
 
 def test_latex_forms(known):
     _, dists, cons, info = known
-    tex = summary.latex_table(list(cons.values()), info)
+    tex = tables.latex_table(list(cons.values()), info)
     assert r"\begin{tabular}" in tex and r"\end{tabular}" in tex and r"\usepackage" not in tex
+    assert " & ".join(tables.LATEX_HEADINGS) + r" \\" in tex.splitlines()
     skew_row = _latex_row(tex, r"$\sigma_{\rm sk}$")
     m = re.search(r"\$([\d.]+)\^\{\+([\d.]+)\}_\{-([\d.]+)\}\$", skew_row)
     assert m, skew_row                                        # asymmetric form for the lognormal
@@ -149,14 +155,16 @@ def test_latex_forms(known):
 
 def test_markdown_table(known):
     _, _, cons, info = known
-    md = summary.markdown_table(list(cons.values()), info, {"run": "known-distributions"})
-    assert "equal-tailed" in md and f"first {info['burn']} steps" in md and "**Converged**" in md
+    md = tables.markdown_table(list(cons.values()), info, {"run": "known-distributions"})
+    assert "Central intervals" in md and f"first {info['burn']} steps" in md and "**Converged**" in md
+    assert "| " + " | ".join(tables.MARKDOWN_HEADINGS) + " |" in md
+    assert tables.UNRELIABLE not in md                # 400 independent steps: τ = 1 is measurable
     assert md.count("\n| `") == len(cons)
-    assert "one-sided 95 %" in md and summary.FLAG not in md
+    assert "one-sided 95 %" in md and tables.FLAG not in md
     # a row missing the ESS target gets the marker and the footnote
     strict = dict(info, ess_target=1e9)
-    md2 = summary.markdown_table(list(cons.values()), strict, {})
-    assert "**Not converged**" in md2 and md2.count(summary.FLAG) >= len(cons) + 1
+    md2 = tables.markdown_table(list(cons.values()), strict, {})
+    assert "**Not converged**" in md2 and md2.count(tables.FLAG) >= len(cons) + 1
 
 
 @pytest.mark.parametrize("x, err, expected", [
@@ -175,13 +183,13 @@ def test_markdown_table(known):
     (1.0, 0.0, "1"),
 ])
 def test_format_value(x, err, expected):
-    assert summary.format_value(x, err) == expected
+    assert rounding.format_value(x, err) == expected
 
 
 def test_format_value_plain_text():
-    assert summary.format_value(67.36, 0.54, tex=False) == "67.36 ± 0.54"
-    assert summary.format_value(2.1e-9, 3.0e-11, tex=False) == "(2.100 ± 0.030) ×10^-9"
-    assert summary.format_asym(1.0, 0.644, 0.392) == "1.00^{+0.64}_{-0.39}"
+    assert rounding.format_value(67.36, 0.54, tex=False) == "67.36 ± 0.54"
+    assert rounding.format_value(2.1e-9, 3.0e-11, tex=False) == "(2.100 ± 0.030) ×10^-9"
+    assert rounding.format_asym(1.0, 0.644, 0.392) == "1.00^{+0.64}_{-0.39}"
 
 
 def test_credible_levels_match_gaussian_hpd():
@@ -197,10 +205,10 @@ def test_credible_levels_match_gaussian_hpd():
 
 def test_burn_checks(known):
     s = known[0]
-    assert summary.constraints(s, burn=100)[1]["burn"] == 100
+    assert marginals.constraints(s, burn=100)[1]["burn"] == 100
     for bad in (-1, STEPS, 2.5):
         with pytest.raises(UserError):
-            summary.constraints(s, burn=bad)
+            marginals.constraints(s, burn=bad)
 
 
 # -- files ------------------------------------------------------------------------------------------
@@ -252,7 +260,7 @@ def test_write_summary_files(tmp_path):
                 img = mpimg.imread(p)
                 assert img.ndim == 3 and min(img.shape[:2]) > 200
     assert keep.read_text() == "mine" and os.stat(keep).st_mtime_ns == before
-    assert not [p for p in out.iterdir() if p.name.startswith(".") and p.name != summary._MANIFEST]
+    assert not [p for p in out.iterdir() if p.name.startswith(".") and p.name != summary.MANIFEST]
     # a file written by a summary and edited since is not replaced
     paths["markdown"].write_text(paths["markdown"].read_text() + "\nmy edits\n")
     with pytest.raises(UserError, match="constraints.md"):
@@ -276,12 +284,15 @@ def test_write_summary_refuses_foreign_files(tmp_path):
 
 def test_convergence_history_prefixes():
     s = _small_run()
-    h = plots.convergence_history(s, n_points=6)
+    h = plots.convergence_history(s, Stopping(), n_points=6)
     assert list(h["step"]) == [20, 40, 60, 80, 100, 120]
-    # the last point is the diagnostics of the second half of the whole run (infer.diagnostics)
-    last = diagnostics.all_diagnostics(s.position[60:], list(s.names))
-    assert h["rhat_max"][-1] == max(d["rhat"] for d in last.values())
-    assert h["ess_bulk_min"][-1] == min(d["ess_bulk"] for d in last.values())
+    # each point is what the stopping rule says of the run up to that step (one burn-in rule)
+    from infer.sampling.stopping import assess
+    last = assess(s, Stopping())
+    assert h["rhat_max"][-1] == last.rhat_max
+    assert h["ess_bulk_min"][-1] == last.ess_bulk_min and h["tau_max"][-1] == last.tau_max
+    # AR(1) walkers with ρ = 0.8 have τ = 9 (Sokal 1997): 120 steps < 50 τ, never trusted
+    assert not h["trusted"].any()
 
 
 def test_plots_leave_matplotlib_global_state_alone(tmp_path):
@@ -289,4 +300,5 @@ def test_plots_leave_matplotlib_global_state_alone(tmp_path):
     before = dict(matplotlib.rcParams)
     backend = matplotlib.get_backend()
     plots.convergence(plots.convergence_history(_small_run(), n_points=4), tmp_path / "c.png")
+    plots.render(plots.traces_figure(_small_run(), 10))
     assert dict(matplotlib.rcParams) == before and matplotlib.get_backend() == backend

@@ -376,8 +376,10 @@ def acceptance_fraction(positions) -> np.ndarray:
 
 
 def burn_in(tau_max: float, steps: int, factor: float = 5.0) -> int:
-    """Number of initial steps to discard.
+    """Number of initial steps to discard: the arithmetic of the burn-in rule.
 
+    Which τ_max and which factor the run uses is decided in one place, `infer.analysis.burnin`
+    (``BURN_FACTOR``, τ over every sampled and derived quantity); call it through `burnin.choose`.
     Rule: ceil(factor · τ_max) steps, never more than half the chain
     (steps // 2); a non-finite τ_max (no usable estimate) discards half the
     chain. A few τ of burn-in is common practice for ensemble samplers

@@ -1,9 +1,10 @@
 """The log-posterior of one run: priors × band-power likelihood of a theory's spectra.
 
 ln p(θ | d) = ln π(θ) + ln L(d | θ) + const (Bayes' theorem). `Posterior` is built from a validated
-`Config` in whichever process evaluates it (the driver, a worker process, an MPI rank), so that nothing
-but the run file crosses process boundaries. A point outside the prior support never reaches the theory;
-a point the theory cannot compute (`TheoryError`) gets −∞ with its reason returned for counting.
+`Config`; `PosteriorFactory` is the picklable recipe the evaluators (`infer.parallel`) send to worker
+processes and MPI ranks, each of which builds the posterior once. A point outside the prior support never
+reaches the theory; a point the theory cannot compute (`TheoryError`) gets −∞ with its reason returned
+for counting.
 
 Per point the result is ``(ln posterior, blob, reason)`` with ``blob = [ln L, derived..., χ²]``
 (`blob_names`), ``reason`` None for a computed point.
@@ -11,15 +12,19 @@ Per point the result is ``(ln posterior, blob, reason)`` with ``blob = [ln L, de
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
-from infer.data import bandpowers as datasets
 from infer.config import Config
+from infer import data as datasets
 from infer.errors import UserError
-from infer.model.likelihood import NUISANCE, BandPowerLikelihood
+from infer.model.likelihood import NUISANCE, BandPowerLikelihood, FitQuality
 from infer.model.priors import PriorSet
 from infer.theory import TheoryError, make_theory
+
+#: The blob field holding the χ² of the point, and its label.
+CHI2, CHI2_TEX = "chi2", r"\chi^2"
 
 
 def load_data(cfg: Config):
@@ -38,34 +43,43 @@ class Posterior:
         self.names = tuple(p.name for p in cfg.sampled)
         self.fixed = cfg.fixed
         self._check_names()
-        self.priors = PriorSet(cfg.sampled)
+        self.priors = PriorSet(cfg.sampled, where=cfg.path)
         # A derived value that is also sampled (H0 or theta_star_100, say) would only repeat its input.
         self._derived = tuple(n for n in self.theory.derived_names if n not in self.names)
-        self.derived_names = self._derived + ("chi2",)
+        self.derived_names = self._derived + (CHI2,)
         self.blob_names = ("log_like",) + self.derived_names
         self._nuisance = [n for n in NUISANCE if n in self.names or n in self.fixed]
         self._inputs = [n for n in self.theory.inputs if n in self.names or n in self.fixed]
 
     def _check_names(self):
         given = set(self.names) | set(self.fixed)
-        inputs = set(self.theory.inputs)
-        known = inputs | set(NUISANCE)
+        theory, code = self.theory, self.cfg.theory["code"]
+        known = set(theory.inputs) | set(NUISANCE)
         for name in sorted(given - known):
             raise UserError(f"{self.cfg.path}: [parameters.{name}] is not read by theory code "
-                            f"'{self.cfg.theory['code']}' nor a nuisance parameter (known: {', '.join(sorted(known))})")
-        one_of = tuple(getattr(self.theory, "one_of", ()))
-        required = set(getattr(self.theory, "required", set(inputs) - set(one_of)))
-        for name in sorted(required - given):
-            raise UserError(f"{self.cfg.path}: theory code '{self.cfg.theory['code']}' needs [parameters.{name}] "
+                            f"'{code}' nor a nuisance parameter (known: {', '.join(sorted(known))})")
+        for name in theory.missing_inputs(given):
+            raise UserError(f"{self.cfg.path}: theory code '{code}' needs [parameters.{name}] "
                             "(sampled with 'prior' or fixed with 'value')")
-        if one_of and sum(n in given for n in one_of) != 1:
+        if theory.one_of and len(theory.chosen_inputs(given)) != 1:
             raise UserError(f"{self.cfg.path}: give exactly one of " +
-                            ", ".join(f"[parameters.{n}]" for n in one_of))
+                            ", ".join(f"[parameters.{n}]" for n in theory.one_of))
 
+    # -- one point ---------------------------------------------------------------------------------
     def point(self, x: np.ndarray) -> dict[str, float]:
         values = dict(self.fixed)
         values.update(zip(self.names, (float(v) for v in x)))
         return values
+
+    def theory_inputs(self, x: np.ndarray) -> dict[str, float]:
+        """The theory's inputs at ``x`` (sampled and fixed values)."""
+        values = self.point(x)
+        return {k: values[k] for k in self._inputs}
+
+    def nuisance_values(self, x: np.ndarray) -> dict[str, float]:
+        """The nuisance parameters given at ``x`` (the others sit at their defaults)."""
+        values = self.point(x)
+        return {k: values[k] for k in self._nuisance}
 
     def __call__(self, x: np.ndarray) -> tuple[float, np.ndarray, str | None]:
         blob = np.full(len(self.blob_names), np.nan)
@@ -88,9 +102,38 @@ class Posterior:
 
     def model_bands(self, x: np.ndarray) -> np.ndarray:
         """Model band powers at one point (for the data-vs-model figure)."""
-        values = self.point(x)
-        spectra = self.theory.compute({k: values[k] for k in self._inputs})
-        return self.like.model(spectra, {k: values[k] for k in self._nuisance})
+        spectra = self.theory.compute(self.theory_inputs(x))
+        return self.like.model(spectra, self.nuisance_values(x))
+
+    def fit_quality(self, x: np.ndarray) -> tuple[np.ndarray, FitQuality]:
+        """Model band powers at ``x`` and their fit quality (χ², PTE for N − P dof, χ² per kind), with P
+        the number of sampled parameters. One theory call."""
+        model = self.model_bands(x)
+        return model, self.like.fit_quality(model, len(self.names))
+
+    # -- labels and records ------------------------------------------------------------------------
+    @property
+    def derived_tex(self) -> dict[str, str]:
+        """LaTeX labels of the derived blob fields (the theory's, and χ²)."""
+        tex = {n: self.theory.derived_tex[n] for n in self._derived}
+        tex[CHI2] = CHI2_TEX
+        return tex
+
+    def labels(self) -> dict[str, str]:
+        """LaTeX label of every parameter of the run file (``tex``) and every derived quantity."""
+        return {p.name: p.tex for p in self.cfg.parameters} | self.derived_tex
 
     def describe(self) -> dict:
         return {"theory": self.theory.describe(), "n_bins": self.like.n, "spectra": list(self.like.kinds)}
+
+
+@dataclass(frozen=True)
+class PosteriorFactory:
+    """The picklable recipe of a run's posterior for `infer.parallel`: ``factory()`` builds a
+    `Posterior` from the validated run settings (equal settings give equal factories, so an MPI rank keeps
+    the posterior it built across sessions)."""
+
+    cfg: Config
+
+    def __call__(self) -> Posterior:
+        return Posterior(self.cfg)

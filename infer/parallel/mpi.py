@@ -1,9 +1,10 @@
 """MPI: rank 0 drives the sampler and owns the chain file; every other rank evaluates posterior points.
 
 Message passing with mpi4py (Dalcin et al. 2011, Adv. Water Resour. 34, 1124) in a manager–worker
-pattern. Rank 0 opens an evaluation *session* by sending the validated run settings to every rank; each
-rank builds its own `Posterior` from them (so only a parameter vector and a result cross the network per
-point) and reports ready or a one-line error. Points are then handed out one at a time to whichever rank
+pattern. Rank 0 opens an evaluation *session* by sending a picklable log-density factory (see
+`infer.parallel.base`; the run's posterior is one, a surrogate or a reweighted posterior another) to every
+rank; each rank calls it once and keeps what it built for later sessions with an equal factory (so only a
+parameter vector and a result cross the network per point), and reports ready or a one-line error. Points are then handed out one at a time to whichever rank
 is idle (dynamic load balancing, since Boltzmann-code calls vary in cost across parameter space) and
 results are placed by point index, never by arrival order: the chain is the same value for value on any
 number of ranks, and the same as a serial run or a local process pool of any size.
@@ -17,10 +18,10 @@ Assumptions and choices:
   rank's process group) is handled by rank 0 alone, which abandons the unfinished step, writes its
   checkpoint and only then collects the points still in flight and releases the other ranks, so the run
   exits with 75 and resumes exactly;
-* with ``[sampling] workers`` ≥ 1 every rank evaluates in one isolated worker process
-  (`evaluate.ProcessPool`), so a Boltzmann-code abort costs one point, not the MPI job; ``workers = 0``
-  evaluates inside the rank (slightly less overhead, no isolation);
-* OpenMP threads per evaluating rank: ``[sampling] threads_per_worker``, else 1 (`evaluate.threads_for`),
+* with isolation (``[sampling] workers`` ≥ 1) every rank evaluates in one isolated worker process
+  (`infer.parallel.pool.ProcessPool`), so a Boltzmann-code abort costs one point, not the MPI job;
+  without (``workers = 0``) it evaluates inside the rank (slightly less overhead, no isolation);
+* OpenMP threads per evaluating rank: ``[sampling] threads_per_worker``, else 1 (`base.threads_for`),
   the same count a serial run or a local worker uses, never derived from the number of ranks: CAMB's
   spectra differ in the last bits between thread counts, and the chain must not depend on the rank
   count. Rank 0 warns when the evaluating ranks × threads on a node exceed the cores of their CPU set
@@ -28,13 +29,15 @@ Assumptions and choices:
 
 MPI is detected from the launcher's environment (MPICH/Hydra and Slurm PMI ``PMI_RANK``/``PMI_SIZE``,
 Open MPI ``OMPI_COMM_WORLD_*``, PMIx ``PMIX_RANK``); mpi4py is imported only then, so a serial run never
-initialises MPI. ``mpiexec -n 1`` is an ordinary serial run.
+initialises MPI. ``mpiexec -n 1`` is an ordinary serial run. Nothing here imports the model: any
+log-density runs on the ranks unchanged.
 """
 from __future__ import annotations
 
 import logging
 import math
 import os
+import pickle
 import signal
 import socket
 import time
@@ -42,17 +45,18 @@ import time
 import numpy as np
 
 from infer.errors import EXIT_OK, EXIT_USAGE, UserError
-from infer.parallel.evaluate import Evaluator, InProcess, Interrupted, ProcessPool, set_threads, threads_for
+from infer.parallel.base import Evaluator, Interrupted, set_threads, threads_for
+from infer.parallel.inprocess import InProcess
+from infer.parallel.pool import ProcessPool, pickled, setup_error
 
 log = logging.getLogger("infer")
 
-# Message tags. Rank 0 → evaluators: a session opens (header, then the run settings), a point, the
-# session closes, the run ends. Evaluators → rank 0: ready (None or a one-line error), a result.
+# Message tags. Rank 0 → evaluators: a session opens (header, then the factory and how to run it), a
+# point, the session closes, the run ends. Evaluators → rank 0: ready (blob names or an error), a result.
 TAG_OPEN, TAG_SETTINGS, TAG_POINT, TAG_CLOSE, TAG_EXIT = 21, 22, 23, 24, 25
 TAG_READY, TAG_RESULT = 31, 32
 _SIZE_VARS = ("PMI_SIZE", "OMPI_COMM_WORLD_SIZE", "PMIX_SIZE")
 _RANK_VARS = ("PMI_RANK", "OMPI_COMM_WORLD_RANK", "PMIX_RANK")
-MPI_COMMANDS = ("run", "resume")        # the commands that use the evaluating ranks
 _MAX_SLEEP = 0.005                      # longest sleep between tests of a pending receive (s)
 _BUF = 1 << 16                          # receive buffer of the small messages (bytes, pickled)
 
@@ -131,7 +135,7 @@ class _Inbox:
 
     A posted receive lets the MPI library deliver straight into it; probing alone needed many progress
     calls per message with the PyPI MPICH here (12 ms against 0.6 ms per round trip). Every message on
-    this path pickles to far less than ``_BUF`` bytes; the run settings travel separately.
+    this path pickles to far less than ``_BUF`` bytes; the factory travels separately (`comm.recv`).
     """
 
     def __init__(self, comm, source, tag):
@@ -158,10 +162,14 @@ class _Inbox:
 
 # -- rank 0 ----------------------------------------------------------------------------------------------
 class MPIEvaluator(Evaluator):
-    """Rank 0's view: sends points to ranks 1 … N−1 and places their results by point index."""
+    """Rank 0's view: sends points to ranks 1 … N−1 and places their results by point index.
 
-    def __init__(self, cfg, blob_size: int):
-        super().__init__(blob_size)
+    ``factory`` builds the log-density on every rank (once per rank while it stays equal); ``isolate``
+    runs it in one worker process per rank; ``threads`` is ``[sampling] threads_per_worker`` (0: one);
+    ``points_per_call`` (the usual number of points per `evaluate`) only serves the idle-rank advice."""
+
+    def __init__(self, factory, isolate: bool = True, threads: int = 0, points_per_call: int | None = None):
+        super().__init__()
         from mpi4py import MPI
         self.MPI = MPI
         self.comm = start()
@@ -172,43 +180,54 @@ class MPIEvaluator(Evaluator):
         if "inbox" not in _state:
             _state["inbox"] = _Inbox(self.comm, MPI.ANY_SOURCE, TAG_RESULT)
         self.inbox = _state["inbox"]
+        threads = threads_for(1, threads)
+        session = (pickled(factory), bool(isolate), threads)
         for r in self.ranks:
             self.comm.send(None, dest=r, tag=TAG_OPEN)
-            self.comm.send(cfg, dest=r, tag=TAG_SETTINGS)
-        errors = {}
+            self.comm.send(session, dest=r, tag=TAG_SETTINGS)
+        replies = {}
         status = MPI.Status()
         for _ in self.ranks:
             _probe_wait(self.comm, MPI.ANY_SOURCE, TAG_READY, status)
-            errors[status.Get_source()] = self.comm.recv(source=status.Get_source(), tag=TAG_READY)
-        bad = [errors[r] for r in sorted(errors) if errors[r]]
+            replies[status.Get_source()] = self.comm.recv(source=status.Get_source(), tag=TAG_READY)
+        bad = [replies[r][1:] for r in sorted(replies) if replies[r][0] != "ready"]
         if bad:
             self.close()
-            raise UserError(bad[0])
-        self._announce(cfg)
+            user, text = bad[0]
+            if user:
+                raise UserError(text)
+            raise RuntimeError(text)
+        names = {replies[r][1] for r in replies}
+        if len(names) != 1:
+            self.close()
+            raise RuntimeError(f"MPI ranks built log-densities with different blob names: {sorted(names)}")
+        self.blob_names = names.pop()
+        self._announce(bool(isolate), threads, points_per_call)
 
-    def _announce(self, cfg):
+    def _announce(self, isolate: bool, threads: int, per_call: int | None):
         if _state.get("announced"):
             return
         _state["announced"] = True
-        threads = threads_for(1, cfg.sampling.threads_per_worker)
         hosts = len({host for host, _ in _state["layout"]})
-        n, half = len(self.ranks), cfg.sampling.walkers // 2
+        n = len(self.ranks)
         log.info("MPI: rank 0 drives, %d rank%s evaluate%s on %d node%s with %d OpenMP thread%s each, the "
                  "theory in %s", n, "s" if n > 1 else "", "" if n > 1 else "s", hosts, "s" if hosts > 1 else "",
                  threads, "" if threads == 1 else "s",
-                 "an isolated process per rank" if cfg.sampling.workers else "the ranks themselves")
+                 "an isolated process per rank" if isolate else "the ranks themselves")
         over = oversubscribed(threads)
         if over:
             log.warning("MPI: more threads than cores (%s): the ranks slow each other down; use fewer ranks per "
                         "node or a smaller [sampling] threads_per_worker", "; ".join(over))
-        if n > half:
-            log.warning("MPI: %d evaluating ranks but a posterior call has only walkers/2 = %d points: %d ranks "
-                        "always idle (use [sampling] walkers >= %d, or fewer ranks)", n, half, n - half, 2 * n)
-        elif half % n:
-            rounds = math.ceil(half / n)
+        if not per_call:
+            return
+        if n > per_call:
+            log.warning("MPI: %d evaluating ranks but a posterior call has only %d points: %d ranks "
+                        "always idle (use more walkers, or fewer ranks)", n, per_call, n - per_call)
+        elif per_call % n:
+            rounds = math.ceil(per_call / n)
             log.info("MPI: the %d points of a posterior call take %d rounds on %d ranks, so %.0f %% of rank "
-                     "time idles (make walkers/2 a multiple of %d to avoid it)", half, rounds, n,
-                     100 * (1 - half / (rounds * n)), n)
+                     "time idles (make the points per call a multiple of %d to avoid it)", per_call, rounds, n,
+                     100 * (1 - per_call / (rounds * n)), n)
 
     def evaluate(self, points):
         points = np.asarray(points, float)
@@ -262,10 +281,8 @@ def shutdown() -> None:
 
 
 # -- ranks 1 … N−1 ---------------------------------------------------------------------------------------
-def serve(args) -> int:
+def serve() -> int:
     """Non-root ranks: evaluate points for every session rank 0 opens, until released."""
-    if args.command not in MPI_COMMANDS:
-        return EXIT_OK                      # other commands run on rank 0 alone (no duplicate output or files)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     try:
@@ -290,19 +307,17 @@ def serve(args) -> int:
                     reply = (i, None, None, f"{err.__class__.__name__}: {err}")
                 comm.send(reply, dest=0, tag=TAG_RESULT)
             elif tag == TAG_OPEN:
-                cfg = comm.recv(source=0, tag=TAG_SETTINGS)
-                error = None
-                if cfg != built_for:        # the same run again (start, then sampling): keep the evaluator
+                payload, isolate, threads = comm.recv(source=0, tag=TAG_SETTINGS)
+                try:
+                    evaluator, built_for = _session(payload, isolate, threads, evaluator, built_for)
+                    reply = ("ready", evaluator.blob_names)
+                except Exception as err:  # reported by rank 0 as one line
                     if evaluator is not None:
                         evaluator.close()
                     evaluator, built_for = None, None
-                    try:
-                        evaluator = _build(cfg, threads_for(1, cfg.sampling.threads_per_worker))
-                        built_for = cfg
-                    except Exception as err:  # reported by rank 0 as one line
-                        error = (str(err) if isinstance(err, UserError) else
-                                 f"MPI rank {comm.Get_rank()}: {err.__class__.__name__}: {err}")
-                comm.send(error, dest=0, tag=TAG_READY)
+                    user, text = setup_error(err)
+                    reply = ("error", user, text if user else f"MPI rank {comm.Get_rank()}: {text}")
+                comm.send(reply, dest=0, tag=TAG_READY)
             elif tag == TAG_EXIT:
                 return EXIT_OK
             # TAG_CLOSE: nothing to do; the evaluator is kept for the next session
@@ -311,10 +326,26 @@ def serve(args) -> int:
             evaluator.close()
 
 
-def _build(cfg, threads: int) -> Evaluator:
-    from infer.model.posterior import Posterior
-    if cfg.sampling.workers == 0:
-        set_threads(threads)                # before the theory code is first imported in this rank
-        return InProcess(Posterior(cfg))
-    post = Posterior(cfg)                   # checks the run here too, so errors read the same on every rank
-    return ProcessPool(cfg, 1, len(post.blob_names), threads)
+def _session(payload: bytes, isolate: bool, threads: int, evaluator, built_for):
+    """The evaluator of a new session: the one already built when the session asks for the same thing
+    (an equal factory, run the same way — e.g. the starting ball, then the sampling), else a new one.
+    ``built_for`` is ``(payload, isolate, threads, factory)`` of the current evaluator, or None."""
+    how = (isolate, threads)
+    if built_for is not None and built_for[1:3] == how and built_for[0] == payload:
+        return evaluator, built_for
+    if not isolate:
+        set_threads(threads)            # before the factory's libraries are first imported in this rank
+    factory = pickle.loads(payload)
+    if built_for is not None and built_for[1:3] == how and _equal(built_for[3], factory):
+        return evaluator, (payload, isolate, threads, factory)
+    if evaluator is not None:
+        evaluator.close()
+    evaluator = ProcessPool(factory, 1, threads) if isolate else InProcess(factory())
+    return evaluator, (payload, isolate, threads, factory)
+
+
+def _equal(a, b) -> bool:
+    try:
+        return bool(a == b)
+    except Exception:  # noqa: BLE001 - a factory whose comparison fails is simply rebuilt
+        return False

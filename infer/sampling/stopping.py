@@ -1,12 +1,12 @@
 """The stopping rule: is the evidence of convergence in?
 
-A chain meets the rule when, after automatic burn-in removal (`diagnostics.burn_in`, a multiple of the
-largest integrated autocorrelation time), for every sampled and derived quantity:
+A chain meets the rule when, after automatic burn-in removal (`infer.analysis.burnin.choose`, the one home
+of the burn-in rule: 5 × the largest integrated autocorrelation time), for every sampled and derived quantity:
   * the rank-normalised split-R̂ (Vehtari et al. 2021, Bayesian Analysis 16, 667) between the independent
     ensembles is below ``rhat_below`` (default 1.01, the paper's recommendation);
   * bulk and tail effective sample sizes (same paper) exceed ``ess_above``;
   * the run is longer than ``tau_multiple`` × the largest τ_int (default 50, the rule of thumb of
-    Foreman-Mackey et al. 2013, PASP 125, 306 for trusting the τ estimate itself);
+    Foreman-Mackey et al. 2013, PASP 125, 306 for trusting the τ estimate itself; `burnin.tau_trusted`);
   * at least ``min_steps`` steps were taken.
 For long chains the figures are computed on the kept steps thinned to at most `MAX_STEPS` (every k-th
 step; τ is then rescaled by k). Thinning by less than τ loses almost no information (ESS is nearly
@@ -21,11 +21,11 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from infer.analysis import diagnostics
+from infer.analysis import burnin, diagnostics
 from infer.analysis.samples import Samples
 
 
-MAX_STEPS = 4000
+MAX_STEPS = burnin.MAX_STEPS
 
 
 @dataclass
@@ -45,23 +45,25 @@ class Verdict:
         return {k: float(d[k]) for k in ("step", "rhat_max", "ess_bulk_min", "ess_tail_min", "tau_max", "met")}
 
 
+def _diagnostics(columns, rows: slice) -> dict[str, dict[str, float]]:
+    """`diagnostics.all_diagnostics` of each (steps, E, W) column view over ``rows`` (no copy of the chain)."""
+    return {name: diagnostics.all_diagnostics(col[rows, ..., None], [name])[name] for name, col in columns}
+
+
 def assess(samples: Samples, rule, burn: int | None = None) -> Verdict:
-    """Diagnostics of ``samples`` against a `config.Stopping` rule (``burn`` None: automatic)."""
+    """Diagnostics of ``samples`` against a `config.Stopping` rule (``burn`` None: automatic).
+
+    Works on views of ``samples``' arrays, one quantity at a time, so a check never copies the chain."""
     T = samples.steps
-    values = np.concatenate([samples.position, samples.derived], axis=-1)      # (T, E, W, P+D)
-    names = list(samples.all_names)
-    finite = np.all(np.isfinite(values), axis=(0, 1, 2))
-    values, names = values[..., finite], [n for n, ok in zip(names, finite) if ok]
     if T < 8:
         return Verdict(T, 0, math.inf, 0.0, 0.0, math.nan, False, ["too few steps to judge"])
+    columns = ([(n, samples.position[..., i]) for i, n in enumerate(samples.names)] +
+               [(n, samples.derived[..., i]) for i, n in enumerate(samples.derived_names)])
+    columns = [(n, c) for n, c in columns if np.isfinite(c).all()]
     if burn is None:
-        step = max(1, T // MAX_STEPS)
-        pre = diagnostics.all_diagnostics(values[::step], names)
-        tau_all = step * max((d["tau"] for d in pre.values()), default=math.nan)
-        burn = diagnostics.burn_in(tau_all, T)
+        burn = burnin.choose(samples, tau_multiple=rule.tau_multiple, max_steps=MAX_STEPS).burn
     thin = max(1, (T - burn) // MAX_STEPS)
-    kept = values[burn::thin]
-    per = diagnostics.all_diagnostics(kept, names)
+    per = _diagnostics(columns, slice(burn, None, thin))
     if thin > 1:
         for d in per.values():
             d["tau"] *= thin
@@ -74,7 +76,7 @@ def assess(samples: Samples, rule, burn: int | None = None) -> Verdict:
         missing.append(f"R̂ {rhat:.3f} ≥ {rule.rhat_below}")
     if not min(eb, et) > rule.ess_above:
         missing.append(f"ESS {min(eb, et):.0f} ≤ {rule.ess_above:.0f}")
-    if not T > rule.tau_multiple * tau:
+    if not burnin.tau_trusted(T, tau, rule.tau_multiple):
         missing.append(f"steps {T} ≤ {rule.tau_multiple:g}τ = {rule.tau_multiple * tau:.0f}")
     if T < rule.min_steps:
         missing.append(f"steps {T} < min_steps {rule.min_steps}")

@@ -15,9 +15,12 @@ Every byte that carries meaning is checksummed, so damage is reported, never rea
 the HDF5 1.10 object formats (``libver='v110'``: superblock, object headers with their attributes and the
 chunk indexes carry Jenkins lookup3 checksums), every dataset is chunked with the Fletcher-32 filter, text
 (JSON records, the run file) is stored as UTF-8 bytes in such datasets and strings as fixed-length
-values, never in HDF5's unchecksummed global heap. A run of zero-filled steps (what a lost write looks like
-after a host crash) is also refused. `infer.salvage` copies the longest intact prefix of a damaged file into
-a new one. Files need HDF5 ≥ 1.10 (2017) to read.
+values, never in HDF5's unchecksummed global heap (`infer.store.hdf5io`). A run of zero-filled steps
+(what a lost write looks like after a host crash) is also refused. `infer.store.salvage` copies the
+longest intact prefix of a damaged file into a new one. Files need HDF5 ≥ 1.10 (2017) to read.
+
+`ChainStore` is the file implementation of `infer.store.base.ChainBackend`; `infer.store.memory` is the
+other one.
 
 The cost is one file copy per checkpoint (``sendfile``; a 1 GB chain copies in about a second on a local
 disk), which is why checkpoints are spaced in steps or minutes.
@@ -55,50 +58,29 @@ from __future__ import annotations
 
 import gc
 import glob
-import json
 import os
-import re
 import shutil
 import sys
 import time
-from dataclasses import dataclass, field
 
 import h5py
 import numpy as np
 
 from infer import __version__
+from infer.analysis.samples import DRAWS, Samples
+from infer.atomic import fsync_path
 from infer.errors import ChainFileError
-from infer.analysis.samples import Samples
+from infer.sampling.state import BlobLayout, StepState
+from infer.store.base import CONVERGENCE, ChainBackend, ChainState, check_draws
+from infer.store.hdf5io import (attr_str, bytes_attr, checked, errno_of, fixed_strs, get_json, io_error,
+                                provenance_from, put_json, short, strs_from)
 
 FORMAT = "infer-chain"
 FORMAT_VERSION = 2
 LIBVER = ("v110", "v110")        # checksummed metadata; readable by HDF5 >= 1.10
-DRAWS = ("position", "log_post", "log_like", "derived")
-CONVERGENCE = ("step", "rhat_max", "ess_bulk_min", "ess_tail_min", "tau_max", "met")
 RNG_KEYS = ("rng_key", "rng_pos", "rng_has_gauss", "rng_gauss")
-TEXT_CHUNK = 4096
-
-
-@dataclass
-class ChainState:
-    """Everything in a chain file, read into memory."""
-    samples: Samples
-    steps_done: int
-    start: dict                         # position (E,W,P), log_post (E,W), blobs (E,W,B)
-    rng: list                           # per ensemble: a numpy RandomState state tuple
-    provenance: dict
-    events: list = field(default_factory=list)
-    rejections: dict = field(default_factory=dict)
-    failures: list = field(default_factory=list)
-    convergence: dict = field(default_factory=dict)
-
-    def last(self):
-        """(position (E,W,P), log_post (E,W), blobs (E,W,B)) of the newest stored step."""
-        s = self.samples
-        if self.steps_done == 0:
-            return self.start["position"], self.start["log_post"], self.start["blobs"]
-        blobs = np.concatenate([s.log_like[-1][..., None], s.derived[-1]], axis=-1)
-        return s.position[-1], s.log_post[-1], blobs
+__all__ = ["ChainStore", "ChainState", "DRAWS", "CONVERGENCE", "FORMAT", "FORMAT_VERSION", "zero_steps",
+           "rng_to_arrays", "rng_from_arrays"]
 
 
 def rng_to_arrays(states):
@@ -115,81 +97,6 @@ def rng_from_arrays(g):
     return [("MT19937", key[e].astype(np.uint32), int(pos[e]), int(hg[e]), float(ga[e])) for e in range(len(pos))]
 
 
-# -- checksummed storage of text and strings --------------------------------------------------------------
-def put_text(g, name: str, text: str) -> None:
-    """Store ``text`` as UTF-8 bytes in a resizable, Fletcher-32-checked dataset (rewritten only if changed)."""
-    data = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
-    if name in g:
-        ds = g[name]
-        if ds.dtype == np.uint8 and ds.ndim == 1:
-            if ds.shape[0] == len(data) and np.array_equal(ds[()], data):
-                return
-            ds.resize((len(data),))
-            if len(data):
-                ds[...] = data
-            return
-        del g[name]                                      # a format-1 variable-length string
-    chunk = int(min(TEXT_CHUNK, max(256, len(data))))
-    ds = g.create_dataset(name, shape=(len(data),), maxshape=(None,), dtype=np.uint8,
-                          chunks=(chunk,), fletcher32=True)
-    if len(data):
-        ds[...] = data
-
-
-def get_text(ds) -> str:
-    value = ds[()]
-    if isinstance(value, np.ndarray) and value.dtype == np.uint8:
-        return value.tobytes().decode("utf-8")
-    return value.decode("utf-8") if isinstance(value, bytes) else str(value)   # format 1
-
-
-def put_json(g, name, value) -> None:
-    put_text(g, name, json.dumps(value, sort_keys=True))
-
-
-def get_json(ds):
-    return json.loads(get_text(ds))
-
-
-def _fixed_strs(values):
-    enc = [str(v).encode("utf-8") for v in values]
-    n = max([len(e) for e in enc] + [1])
-    return np.array(enc, dtype=h5py.string_dtype("utf-8", n)).reshape(len(enc))
-
-
-def _strs_from(ds):
-    return tuple(s.decode("utf-8") if isinstance(s, bytes) else str(s) for s in ds[()])
-
-
-def attr_str(obj, key, default=None):
-    v = obj.attrs.get(key, default)
-    return v.decode("utf-8") if isinstance(v, bytes) else v
-
-
-def _bytes(s: str):
-    return np.bytes_(s.encode("utf-8"))
-
-
-def _checked(g, name, data, **kw):
-    """A small array dataset, chunked so that Fletcher-32 protects it."""
-    data = np.asarray(data)
-    shape = data.shape
-    chunks = tuple(max(1, n) for n in shape) if shape else None
-    if not shape:
-        data = data.reshape(1)
-        chunks = (1,)
-    maxshape = tuple(None if n == 0 else n for n in data.shape)
-    return g.create_dataset(name, data=data, chunks=chunks, maxshape=maxshape, fletcher32=True, **kw)
-
-
-def _fsync(path, directory=False):
-    fd = os.open(path, os.O_RDONLY | (os.O_DIRECTORY if directory else 0))
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def zero_steps(position, log_post) -> np.ndarray:
     """Indices of steps whose positions and ln p are all exactly zero: lost writes, never a real step."""
     if not len(log_post):
@@ -199,8 +106,8 @@ def zero_steps(position, log_post) -> np.ndarray:
     return np.flatnonzero(~flat_p.any(axis=1) & ~flat_l.any(axis=1))
 
 
-class ChainStore:
-    """A chain file on disk. Writers must hold a `infer.lock.ChainLock` on the same path."""
+class ChainStore(ChainBackend):
+    """A chain file on disk. Writers must hold a `infer.store.lock.ChainLock` on the same path."""
 
     def __init__(self, path: str):
         self.path = os.path.abspath(path)
@@ -233,7 +140,7 @@ class ChainStore:
         old_hook = sys.unraisablehook
 
         def hook(u):
-            if "h5py" in repr(u.object) or _errno_of(u.exc_value) is not None:
+            if "h5py" in repr(u.object) or errno_of(u.exc_value) is not None:
                 swallowed.append(u.exc_value)
             else:
                 old_hook(u)
@@ -251,14 +158,14 @@ class ChainStore:
                 f.flush()
             gc.collect()                         # run any pending h5py destructors inside the guard
             if swallowed:
-                raise _io_error(swallowed[0])
+                raise io_error(swallowed[0])
             with h5py.File(tmp, "r", locking=False) as f:
                 verify(f)
             if swallowed:
-                raise _io_error(swallowed[0])
-            _fsync(tmp)
+                raise io_error(swallowed[0])
+            fsync_path(tmp)
             os.replace(tmp, self.path)
-            _fsync(os.path.dirname(self.path), directory=True)
+            fsync_path(os.path.dirname(self.path), directory=True)
         except BaseException as err:
             try:
                 os.unlink(tmp)
@@ -268,12 +175,12 @@ class ChainStore:
                 raise ChainFileError(f"{self.path}: cannot write the checkpoint (the new copy did not read back "
                                      f"as written: {err}); the file on disk still holds the previous "
                                      "checkpoint") from None
-            if isinstance(err, Exception) and not isinstance(err, OSError) and _errno_of(err) is not None:
-                err = _io_error(err)
+            if isinstance(err, Exception) and not isinstance(err, OSError) and errno_of(err) is not None:
+                err = io_error(err)
             if not isinstance(err, OSError):
                 raise
-            code = _errno_of(err)
-            what = os.strerror(code) if code else (getattr(err, "strerror", None) or _short(err))
+            code = errno_of(err)
+            what = os.strerror(code) if code else (getattr(err, "strerror", None) or short(err))
             if create:
                 tail = "nothing was written"
             elif os.path.exists(self.path):
@@ -284,37 +191,40 @@ class ChainStore:
         finally:
             sys.unraisablehook = old_hook
 
-    def create(self, *, names, derived_names, tex, bounds, ensembles, walkers, start, rng, provenance,
-               draws=None, events=None, rejections=None, failures=None, convergence=None,
-               stop_reason=None) -> None:
+    def create(self, *, names, derived_names, tex, bounds, start: StepState, provenance, draws=None, rng=None,
+               events=None, rejections=None, failures=None, convergence=None, stop_reason=None) -> None:
         """Write a new chain file in one atomic commit: its metadata, starting ball and random states,
-        and (used by `infer.salvage`) optionally steps already taken, given as ``draws`` = dict of the
-        four arrays shaped (n, E, W, ...)."""
+        and (used by `infer.salvage`) optionally steps already taken (``draws``) with ``rng`` after them."""
         P, D = len(names), len(derived_names)
-        E, W = ensembles, walkers
+        E, W = start.ensembles, start.walkers
+        rng = start.rng if rng is None else rng
+        tails = {"position": (E, W, P), "log_post": (E, W), "log_like": (E, W), "derived": (E, W, D)}
+        d = draws if draws is not None else {k: np.empty((0,) + tails[k]) for k in DRAWS}
+        check_draws(d, E, W, P, D)
         chunk = max(1, min(512, (1 << 18) // max(1, E * W * (P + D + 2) * 8)))
+        start_arrays = {"position": start.position, "log_post": start.log_post, "blobs": start.blobs}
 
         def build(f):
-            f.attrs.update({"format": _bytes(FORMAT), "format_version": FORMAT_VERSION, "steps_done": 0,
+            f.attrs.update({"format": bytes_attr(FORMAT), "format_version": FORMAT_VERSION, "steps_done": 0,
                             "ensembles": E, "walkers": W,
-                            "created": _bytes(time.strftime("%Y-%m-%dT%H:%M:%S%z")),
-                            "infer_version": _bytes(__version__)})
+                            "created": bytes_attr(time.strftime("%Y-%m-%dT%H:%M:%S%z")),
+                            "infer_version": bytes_attr(__version__)})
             g = f.create_group("draws")
-            for name, tail in (("position", (E, W, P)), ("log_post", (E, W)), ("log_like", (E, W)),
-                               ("derived", (E, W, D))):
+            for name in DRAWS:
+                tail = tails[name]
                 g.create_dataset(name, shape=(0,) + tail, maxshape=(None,) + tail, dtype="f8",
                                  chunks=(chunk,) + tail, fletcher32=True)
             n = f.create_group("names")
-            _checked(n, "sampled", _fixed_strs(names))
-            _checked(n, "derived", _fixed_strs(derived_names))
+            checked(n, "sampled", fixed_strs(names))
+            checked(n, "derived", fixed_strs(derived_names))
             put_json(n, "tex", tex)
-            _checked(n, "bounds", np.array([bounds[k] for k in names], float).reshape(P, 2))
+            checked(n, "bounds", np.array([bounds[k] for k in names], float).reshape(P, 2))
             s = f.create_group("start")
             for key in ("position", "log_post", "blobs"):
-                _checked(s, key, np.asarray(start[key], float))
+                checked(s, key, np.asarray(start_arrays[key], float))
             r = f.create_group("resume")
             for key, arr in rng_to_arrays(rng).items():
-                _checked(r, key, arr)
+                checked(r, key, arr)
             c = f.create_group("convergence")
             for key in CONVERGENCE:
                 c.create_dataset(key, shape=(0,), maxshape=(None,), dtype="f8", chunks=(256,), fletcher32=True)
@@ -325,15 +235,12 @@ class ChainStore:
             put_json(run, "events", [])
             put_json(run, "rejections", {})
             put_json(run, "failures", [])
-            self._grow(f, d["position"], d["log_post"], d["log_like"], d["derived"], rng, convergence,
-                       events, rejections, failures, stop_reason)
-
-        d = draws or {k: np.empty((0,)) for k in DRAWS}
+            self._grow(f, d, rng, convergence, events, rejections, failures, stop_reason)
 
         def verify(f):
             _verify_tail(f, 0, d, rng)
             for key in ("position", "log_post", "blobs"):
-                if not np.array_equal(f["start"][key][()], np.asarray(start[key], float), equal_nan=True):
+                if not np.array_equal(f["start"][key][()], np.asarray(start_arrays[key], float), equal_nan=True):
                     raise _VerifyError(f"/start/{key} differs")
 
         try:
@@ -343,17 +250,16 @@ class ChainStore:
         self._commit(build, verify, create=True)
 
     @staticmethod
-    def _grow(f, position, log_post, log_like, derived, rng, convergence, events, rejections, failures,
-              stop_reason):
-        n = len(position)
+    def _grow(f, draws, rng, convergence, events, rejections, failures, stop_reason):
         done = int(f.attrs["steps_done"])
         g = f["draws"]
-        for name, arr in (("position", position), ("log_post", log_post), ("log_like", log_like),
-                          ("derived", derived)):
+        E, W, P = g["position"].shape[1:]
+        n = check_draws(draws, E, W, P, g["derived"].shape[3])
+        for name in DRAWS:
             ds = g[name]
             ds.resize(done + n, axis=0)
             if n:
-                ds[done:done + n] = arr
+                ds[done:done + n] = draws[name]
         for key, arr in rng_to_arrays(rng).items():
             f["resume"][key][...] = arr
         if convergence:
@@ -370,22 +276,28 @@ class ChainStore:
         if failures is not None:
             put_json(run, "failures", failures)
         if stop_reason is not None:
-            run.attrs["stop_reason"] = _bytes(stop_reason)
+            run.attrs["stop_reason"] = bytes_attr(stop_reason)
         f.attrs["steps_done"] = done + n
 
-    def append(self, *, position, log_post, log_like, derived, rng, convergence=None, events=None,
-               rejections=None, failures=None, stop_reason=None) -> int:
-        """Atomically add ``n`` steps (arrays shaped (n, E, W, ...)) and the state after them."""
+    def append(self, draws, rng, *, convergence=None, events=None, rejections=None, failures=None,
+               stop_reason=None) -> int:
+        """Atomically add ``n`` steps (`DRAWS` arrays shaped (n, E, W, ...)) and the state after them."""
         before = {}
 
         def grow(f):
             before["done"] = int(f.attrs["steps_done"])
-            self._grow(f, position, log_post, log_like, derived, rng, convergence, events, rejections, failures,
-                       stop_reason)
+            self._grow(f, draws, rng, convergence, events, rejections, failures, stop_reason)
 
-        new = {"position": position, "log_post": log_post, "log_like": log_like, "derived": derived}
-        self._commit(grow, lambda f: _verify_tail(f, before["done"], new, rng))
-        return len(position)
+        self._commit(grow, lambda f: _verify_tail(f, before["done"], draws, rng))
+        return len(draws["position"])
+
+    def steps_done(self) -> int:
+        """Steps in the published file (reads one attribute); ChainFileError if it cannot be read."""
+        try:
+            with h5py.File(self.path, "r", locking=False) as f:
+                return int(f.attrs["steps_done"])
+        except (OSError, KeyError, ValueError) as err:
+            raise ChainFileError(f"{self.path}: cannot read the chain file ({short(err)})") from None
 
     # -- reading -------------------------------------------------------------------------------------
     def read(self, verify: bool = True) -> ChainState:
@@ -399,7 +311,7 @@ class ChainStore:
         try:
             f = h5py.File(self.path, "r", locking=False)
         except OSError as err:
-            raise ChainFileError(f"{self.path}: damaged or not an HDF5 file ({_short(err)}); "
+            raise ChainFileError(f"{self.path}: damaged or not an HDF5 file ({short(err)}); "
                                  f"{_salvage_hint(self.path)}") from None
         try:
             with f:
@@ -407,7 +319,7 @@ class ChainStore:
         except ChainFileError:
             raise
         except Exception as err:      # h5py reports damage as OSError, KeyError, ValueError, ...
-            raise ChainFileError(f"{self.path}: damaged chain file ({err.__class__.__name__}: {_short(err)}); "
+            raise ChainFileError(f"{self.path}: damaged chain file ({err.__class__.__name__}: {short(err)}); "
                                  f"{_salvage_hint(self.path)}") from None
 
     def _read(self, f, verify=True) -> ChainState:
@@ -419,8 +331,8 @@ class ChainStore:
                                  f"{f.attrs['format_version']}); upgrade infer to read it")
         T = int(f.attrs["steps_done"])
         E, W = int(f.attrs["ensembles"]), int(f.attrs["walkers"])
-        names = _strs_from(f["names/sampled"])
-        dnames = _strs_from(f["names/derived"])
+        names = strs_from(f["names/sampled"])
+        dnames = strs_from(f["names/derived"])
         P, D = len(names), len(dnames)
         expect = {"position": (T, E, W, P), "log_post": (T, E, W), "log_like": (T, E, W), "derived": (T, E, W, D)}
         arrays = {}
@@ -438,18 +350,13 @@ class ChainStore:
                                      f"(a lost write); {_salvage_hint(self.path)}")
         bounds = {n: tuple(b) for n, b in zip(names, f["names/bounds"][()].tolist())}
         tex = get_json(f["names/tex"])
-        prov_g = f["provenance"]
-        if len(prov_g):
-            prov = {k: get_json(prov_g[k]) for k in prov_g}
-        else:                                               # format 1: attributes
-            prov = {k: (v.decode() if isinstance(v, bytes) else v.item() if isinstance(v, np.generic) else v)
-                    for k, v in prov_g.attrs.items()}
+        prov = provenance_from(f["provenance"])
         run = f["run"]
-        samples = Samples(names, dnames, arrays["position"], arrays["derived"], arrays["log_post"],
-                          arrays["log_like"], tex, bounds,
-                          {"chain": self.path, "stop_reason": attr_str(run, "stop_reason", "") or ""})
+        samples = Samples.from_draws(names, dnames, arrays, tex=tex, bounds=bounds,
+                                     meta={"chain": self.path, "stop_reason": attr_str(run, "stop_reason", "") or ""})
         start = {k: f["start"][k][()] for k in ("position", "log_post", "blobs")}
-        if start["position"].shape != (E, W, P) or start["log_post"].shape != (E, W):
+        if (start["position"].shape != (E, W, P) or start["log_post"].shape != (E, W)
+                or start["blobs"].shape != (E, W, 1 + D)):
             raise ChainFileError(f"{self.path}: inconsistent chain: /start has shape {start['position'].shape}, "
                                  f"expected {(E, W, P)}")
         rng = rng_from_arrays(f["resume"])
@@ -458,7 +365,9 @@ class ChainStore:
         conv = {k: f["convergence"][k][()] for k in CONVERGENCE}
         if len({len(v) for v in conv.values()}) > 1:
             raise ChainFileError(f"{self.path}: inconsistent chain: /convergence datasets differ in length")
-        return ChainState(samples, T, start, rng, prov, get_json(run["events"]), get_json(run["rejections"]),
+        start = StepState.from_blobs(start["position"], start["log_post"], start["blobs"], BlobLayout(dnames),
+                                     rng if T == 0 else None)
+        return ChainState(samples, start, rng, prov, get_json(run["events"]), get_json(run["rejections"]),
                           get_json(run["failures"]), conv)
 
 
@@ -483,24 +392,5 @@ def _verify_tail(f, done, draws, rng):
             raise _VerifyError(f"/resume/{key} differs")
 
 
-def _errno_of(err):
-    """The errno of an OSError, or one HDF5 embeds in its message ("errno = 28, ..."), else None."""
-    code = getattr(err, "errno", None)
-    if isinstance(code, int) and code:
-        return code
-    m = re.search(r"errno = (\d+)", str(err))
-    return int(m.group(1)) if m else None
-
-
-def _io_error(err) -> OSError:
-    code = _errno_of(err)
-    return OSError(code, os.strerror(code)) if code else OSError(_short(err))
-
-
 def _salvage_hint(path) -> str:
     return f"copy its intact part into a new file with `infer salvage {path} NEW.h5`"
-
-
-def _short(err) -> str:
-    text = str(err).strip()
-    return (text.splitlines()[0] if text else err.__class__.__name__)[:200]

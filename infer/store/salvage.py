@@ -37,10 +37,13 @@ import time
 import h5py
 import numpy as np
 
+from infer.analysis.samples import DRAWS
 from infer.errors import ChainFileError, UserError
+from infer.sampling.state import BlobLayout, StepState
+from infer.store.base import CONVERGENCE
+from infer.store.chainfile import FORMAT, ChainStore, rng_from_arrays, zero_steps
+from infer.store.hdf5io import attr_str, get_json, provenance_from, strs_from
 from infer.store.lock import ChainLock
-from infer.store.chainfile import (CONVERGENCE, DRAWS, FORMAT, ChainStore, _strs_from, attr_str, get_json,
-                    rng_from_arrays, zero_steps)
 
 SIGNATURE = b"\x89HDF\r\n\x1a\n"
 RESEED_KEY = 0x5A1
@@ -225,14 +228,9 @@ def _recover(f, src, size, notes):
     if fmt is not None and fmt != FORMAT:
         raise ChainFileError(f"{src}: not an infer chain file (format attribute is {fmt!r})")
     try:
-        names = _strs_from(f["names/sampled"])
-        dnames = _strs_from(f["names/derived"])
-        prov_g = f["provenance"]
-        if len(prov_g):
-            provenance = {k: get_json(prov_g[k]) for k in prov_g}
-        else:
-            provenance = {k: (v.decode() if isinstance(v, bytes) else v.item() if isinstance(v, np.generic) else v)
-                          for k, v in prov_g.attrs.items()}
+        names = strs_from(f["names/sampled"])
+        dnames = strs_from(f["names/derived"])
+        provenance = provenance_from(f["provenance"])
         config_text = provenance["config_text"]
     except Exception as err:
         detail = str(err).splitlines()[0][:120] if str(err) else ""
@@ -257,13 +255,17 @@ def _recover(f, src, size, notes):
     if steps < total:
         lost.append(f"steps {steps + 1}–{total} of {total}")
 
-    start = _try(lambda: {k: np.asarray(f["start"][k][()], float) for k in ("position", "log_post", "blobs")},
+    layout = BlobLayout(dnames)
+    start = _try(lambda: StepState.from_blobs(*(np.asarray(f["start"][k][()], float)
+                                                for k in ("position", "log_post", "blobs")), layout),
                  lost, "the starting ball")
+    if start is not None and start.position.shape != (E, W, len(names)):
+        lost.append("the starting ball")
+        start = None
     if start is None:
         if steps == 0:
             raise ChainFileError(f"{src}: cannot be salvaged: no step and no starting point is intact")
-        blobs = np.concatenate([arrays["log_like"][0][..., None], arrays["derived"][0]], axis=-1)
-        start = {"position": arrays["position"][0], "log_post": arrays["log_post"][0], "blobs": blobs}
+        start = StepState.from_draws({k: a[0] for k, a in arrays.items()})
         notes.append("the starting ball was replaced by the first step")
 
     rng = _try(lambda: rng_from_arrays(f["resume"]), lost, "the random states")
@@ -298,8 +300,8 @@ def _recover(f, src, size, notes):
               "lost": lost, "notes": notes}
     if not exact:
         record["reseeded"] = f"SeedSequence([seed, ensemble, {steps}, {RESEED_KEY:#x}])"
-    content = dict(names=names, derived_names=dnames, tex=tex, bounds=bounds, ensembles=E, walkers=W,
-                   start=start, rng=rng, provenance=provenance, draws=arrays,
+    content = dict(names=names, derived_names=dnames, tex=tex, bounds=bounds, start=start, rng=rng,
+                   provenance=provenance, draws=arrays,
                    events=list(events) + [json.loads(json.dumps(record, default=str))],
                    rejections=rejections, failures=failures, convergence=rows,
                    stop_reason=f"salvaged from {os.path.basename(src)}")

@@ -73,12 +73,11 @@ global state and is not safe to call from several threads at once. The object pi
 from __future__ import annotations
 
 import math
-from numbers import Real
 
 import numpy as np
 
-from ..errors import UserError
-from .base import KINDS, Spectra, Theory, TheoryError
+from infer.errors import UserError
+from infer.theory.base import KINDS, Setting, Spectra, Theory, TheoryError
 
 #: CMB monopole temperature in K (Fixsen 2009, ApJ 707, 916).
 T_CMB_K = 2.7255
@@ -96,8 +95,6 @@ ACCURACY_PRESETS = {
              "transfer_high_precision": True},
 }
 
-#: Our settings and their defaults.
-DEFAULTS = {"accuracy": "standard", "sum_mnu_eV": 0.06, "n_eff": STANDARD_N_EFF, "ell_margin": 500}
 
 #: k_max (Mpc⁻¹) of the z = 0 matter transfer function used for σ₈.
 SIGMA8_KMAX = 2.0
@@ -112,9 +109,19 @@ HALOFIT_VERSION = "mead2020"
 
 _CAMB_KINDS = {"TT": 0, "EE": 1, "BB": 2, "TE": 3}   # columns of CAMB's total-spectrum array
 
-
-def _number(value) -> bool:
-    return isinstance(value, Real) and not isinstance(value, bool)
+#: Our ``[theory]`` settings: type, range and default of each (checked when the run file is read).
+SETTINGS = {
+    "accuracy": Setting("choice", "standard", choices=tuple(ACCURACY_PRESETS),
+                        help="accuracy preset (see the table above)"),
+    "sum_mnu_eV": Setting("number", 0.06, low=0.0, high=MNU_MAX_EV, unit="eV",
+                          help="total neutrino mass, in one massive eigenstate"),
+    "n_eff": Setting("number", STANDARD_N_EFF, low=0.0, low_open=True,
+                     help="effective number of relativistic species (within the BBN table for Y_He)"),
+    "ell_margin": Setting("integer", 500, low=100, high=5000,
+                          help="multipoles beyond the data's ell_max for the lensing convolution"),
+}
+#: Our settings and their defaults.
+DEFAULTS = {k: v.default for k, v in SETTINGS.items()}
 
 
 def _short(exc: BaseException, limit: int = 300) -> str:
@@ -130,12 +137,17 @@ class CambTheory(Theory):
     ``n_eff``, ``ell_margin`` (all optional). Every problem raises `UserError` naming ``where`` and the key.
     """
 
+    code = "camb"
     #: Always read.
     required = ("omega_b", "omega_c", "ln_As_1e10", "n_s", "tau")
     #: Exactly one of these is read (H₀ in km/s/Mpc, or 100 θ_*).
     one_of = ("H0", "theta_star_100")
-    inputs = required + one_of
     derived_names = ("H0", "Omega_m", "sigma_8", "S_8", "age_Gyr", "z_re", "theta_star_100")
+    derived_tex = {"H0": r"H_0", "Omega_m": r"\Omega_{\rm m}", "sigma_8": r"\sigma_8", "S_8": r"S_8",
+                   "age_Gyr": r"t_0\,[\mathrm{Gyr}]", "z_re": r"z_{\rm re}", "theta_star_100": r"100\,\theta_*"}
+    SETTINGS = SETTINGS
+    #: Fixed physical inputs a fiducial point may give (the mock generator passes them on as settings).
+    point_settings = ("sum_mnu_eV", "n_eff")
 
     def __init__(self, ell_max: int, settings: dict, where: str = "[theory]"):
         super().__init__(ell_max)
@@ -174,40 +186,6 @@ class CambTheory(Theory):
         self._base = base
         self._version = str(camb.__version__)
 
-    # -- settings ---------------------------------------------------------------------------------------
-
-    @staticmethod
-    def check_settings(settings: dict, where: str = "[theory]") -> dict:
-        """Validated settings with defaults filled in (no CAMB import). Raises `UserError`."""
-        if not isinstance(settings, dict):
-            raise UserError(f"{where}: expected a table of settings, got {type(settings).__name__}")
-        for key in settings:
-            if key not in DEFAULTS:
-                raise UserError(f"{where}: unknown key '{key}' for code = \"camb\" "
-                                f"(allowed: {', '.join(sorted(DEFAULTS))})")
-        out = dict(DEFAULTS)
-        out.update(settings)
-
-        acc = out["accuracy"]
-        if not isinstance(acc, str) or acc not in ACCURACY_PRESETS:
-            raise UserError(f"{where}: accuracy = {acc!r} is not one of "
-                            + ", ".join(f'"{a}"' for a in ACCURACY_PRESETS))
-        mnu = out["sum_mnu_eV"]
-        if not _number(mnu) or not math.isfinite(mnu) or not 0.0 <= mnu <= MNU_MAX_EV:
-            raise UserError(f"{where}: sum_mnu_eV = {mnu!r} must be a number in [0, {MNU_MAX_EV}] "
-                            "(eV; one massive eigenstate)")
-        neff = out["n_eff"]
-        if not _number(neff) or not math.isfinite(neff) or not neff > 0.0:
-            raise UserError(f"{where}: n_eff = {neff!r} must be a positive number")
-        margin = out["ell_margin"]
-        if isinstance(margin, float) and margin.is_integer():
-            margin = int(margin)
-        if not isinstance(margin, int) or isinstance(margin, bool) or not 100 <= margin <= 5000:
-            raise UserError(f"{where}: ell_margin = {margin!r} must be a whole number of multipoles "
-                            "in [100, 5000]")
-        out["accuracy"], out["sum_mnu_eV"], out["n_eff"], out["ell_margin"] = acc, float(mnu), float(neff), margin
-        return out
-
     def describe(self) -> dict:
         """Every setting that changes the prediction (plain values, for the chain file)."""
         preset = ACCURACY_PRESETS[self.settings["accuracy"]]
@@ -232,6 +210,9 @@ class CambTheory(Theory):
             "theta_H0_min": THETA_H0_RANGE[0],
             "theta_H0_max": THETA_H0_RANGE[1],
         }
+
+    def versions(self) -> dict[str, str]:
+        return {"camb": self._version}
 
     def __reduce__(self):
         # CAMB's parameter structures do not pickle; a worker rebuilds the backend from its settings.

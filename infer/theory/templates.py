@@ -14,14 +14,16 @@ mimic a slow Boltzmann code.
 """
 from __future__ import annotations
 
+import math
 import os
 import signal
 import time
 
 import numpy as np
 
-from ..errors import UserError
-from .base import KINDS, Spectra, Theory, TheoryError
+from infer import validate
+from infer.errors import UserError
+from infer.theory.base import KINDS, Setting, Spectra, Theory, TheoryError
 
 NAMES = ("a_1", "a_2", "a_3", "a_4")
 ACTIONS = ("segfault", "exit", "error")
@@ -47,27 +49,30 @@ def _templates(ell_max: int) -> dict[str, np.ndarray]:
     return t
 
 
+def _check_fault(where: str, key: str, f) -> dict:
+    shape = (f"{{ parameter = one of {', '.join(NAMES)}, above = number, action = one of {', '.join(ACTIONS)} }}")
+    if (not isinstance(f, dict) or set(f) != {"parameter", "above", "action"} or f["parameter"] not in NAMES
+            or f["action"] not in ACTIONS or not validate.is_number(f["above"]) or not math.isfinite(f["above"])):
+        raise UserError(f"{where}: '{key}' must be {shape}, got {f!r}")
+    return f
+
+
 class TemplateTheory(Theory):
-    inputs = NAMES
+    code = "templates"
+    required = NAMES
     derived_names = ("a_sum",)
+    derived_tex = {"a_sum": r"\Sigma a"}
+    SETTINGS = {
+        "delay_seconds": Setting("number", 0.0, low=0.0, high=86400.0, unit="s", run_control=True,
+                                 help="sleep per call, to mimic a slow Boltzmann code"),
+        "fault": Setting("table", check=_check_fault, help="fault injection (see the module docstring)"),
+    }
 
     def __init__(self, ell_max: int, settings: dict, where: str = "[theory]"):
         super().__init__(ell_max)
-        allowed = {"delay_seconds", "fault"}
-        for key in settings:
-            if key not in allowed:
-                raise UserError(f"{where}: unknown key '{key}' for code = \"templates\" "
-                                f"(allowed: {', '.join(sorted(allowed))})")
-        self.delay = float(settings.get("delay_seconds", 0.0))
-        if not self.delay >= 0:
-            raise UserError(f"{where}: 'delay_seconds' must be >= 0")
-        self.fault = settings.get("fault")
-        if self.fault is not None:
-            f = self.fault
-            if (not isinstance(f, dict) or f.get("parameter") not in NAMES or f.get("action") not in ACTIONS
-                    or not isinstance(f.get("above"), (int, float))):
-                raise UserError(f"{where}: 'fault' must be {{ parameter = one of {NAMES}, above = number, "
-                                f"action = one of {ACTIONS} }}, got {f!r}")
+        checked = self.check_settings(settings, where)
+        self.delay = checked["delay_seconds"]
+        self.fault = checked.get("fault")
         self.t = _templates(self.ell_max)
 
     def compute(self, params: dict[str, float]) -> Spectra:

@@ -1,128 +1,80 @@
-"""Where the posterior runs: in this process, in isolated worker processes, or on MPI ranks.
+"""A pool of isolated worker processes, each holding at most one point; a crash costs that point only.
 
-Every evaluator maps an array of points (n, P) to ``(log_post (n,), blobs (n, B), reasons)``; results are
-placed by point index, never by arrival order, so a chain is the same value for value whichever evaluator
-(and however many workers) computed it.
+Why our own pool rather than `multiprocessing.Pool` or `concurrent.futures`: a Boltzmann code can abort
+the whole process in odd corners of parameter space (a Fortran STOP, a segfault) and no Python exception
+catches that. The standard pools then lose every task in flight (`BrokenProcessPool`) or hang. Here each
+worker owns one pipe and holds at most one point, so a dead worker costs exactly that point: it gets
+ln p = −∞ with reason ``theory-process-died`` (its parameters are logged and kept in ``failures``) and a
+fresh worker replaces it. Results are placed by point index.
 
-Why our own process pool rather than `multiprocessing.Pool` or `concurrent.futures`: a Boltzmann code can
-abort the whole process in odd corners of parameter space (a Fortran STOP, a segfault) and no Python
-exception catches that. The standard pools then lose every task in flight (`BrokenProcessPool`) or hang.
-Here each worker owns one pipe and holds at most one point, so a dead worker costs exactly that point:
-it gets ln p = −∞ with reason ``theory-process-died`` (its parameters are logged) and a fresh worker
-replaces it. Workers build their own `Posterior` from the run file once, so only a point vector crosses
-the pipe per call. Each worker's threads are capped (OMP_NUM_THREADS etc. set before the theory code is
-imported) so that workers × threads fits the cores.
-
-Stopping: every evaluator polls ``should_stop`` (set by the driver on SIGTERM/SIGINT or when the wall-time
-budget runs out) and raises `Interrupted`, abandoning the unfinished step: the pool polls every 0.2 s
-while it waits and kills the workers still busy, so a 20-minute theory call never delays a pause;
-`InProcess` marks the span of each posterior call as interruptible (``busy``) so that the driver's signal
-handler may raise `Interrupted` inside it (a Python-level wait such as a sleep ends at once; a C or
-Fortran call ends first — use workers ≥ 1 for slow Boltzmann codes).
+Each worker is spawned (no state leaks from the driver), caps its OpenMP/BLAS threads, then unpickles the
+factory and calls it once (see `infer.parallel.base`); the factory travels as bytes, so that no library
+it imports is loaded before the thread cap. Workers ignore SIGINT/SIGTERM: the driver decides when they
+stop. Stopping: the pool polls ``should_stop`` every 0.2 s while it waits and kills the workers still
+busy (`Interrupted`), so a 20-minute theory call never delays a pause.
 """
 from __future__ import annotations
 
 import logging
 import math
 import multiprocessing as mp
-import os
+import pickle
 import signal
 from multiprocessing.connection import wait
 
 import numpy as np
 
 from infer.errors import UserError
+from infer.parallel.base import DIED, Evaluator, Interrupted, never, set_threads, threads_for
 
 log = logging.getLogger("infer")
 
-THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
-DIED = "theory-process-died"
+
+def pickled(factory) -> bytes:
+    """The factory as bytes; a factory that cannot be pickled is a programming error, named here."""
+    if not callable(factory):
+        raise TypeError(f"an evaluator needs a log-density factory (a picklable callable such as "
+                        f"infer.model.posterior.PosteriorFactory(cfg)), got {type(factory).__name__}")
+    try:
+        return pickle.dumps(factory)
+    except Exception as err:  # noqa: BLE001 - pickle raises many kinds
+        raise TypeError(f"the log-density factory {factory!r} cannot be sent to another process "
+                        f"({err.__class__.__name__}: {err}); define it at module level") from None
 
 
-class Interrupted(Exception):
-    """Raised inside an evaluation when the driver asked to stop (signal or wall time)."""
+def build(payload: bytes, threads: int):
+    """In a fresh process: cap the threads, then unpickle the factory and call it once."""
+    set_threads(threads)
+    return pickle.loads(payload)()
 
 
-def never() -> bool:
-    return False
+def setup_error(err: BaseException) -> tuple[bool, str]:
+    """``(is_user_error, one line)`` of an exception raised while building a log-density."""
+    if isinstance(err, UserError):
+        return True, str(err)
+    return False, f"{err.__class__.__name__}: {err}"
 
 
-def set_threads(n: int) -> None:
-    """Cap the OpenMP/BLAS threads of this process; effective for libraries not yet loaded."""
-    for var in THREAD_VARS:
-        os.environ[var] = str(n)
-
-
-def threads_for(workers: int, requested: int = 0) -> int:
-    """OpenMP threads per evaluation: ``[sampling] threads_per_worker``, else 1 — never derived from the
-    worker count, because CAMB's spectra differ in the last bits between thread counts (measured: up to
-    4e-13 relative between 1 and 2 threads, identical run to run at a fixed count), and a chain must not
-    depend on how many workers or MPI ranks computed it. Parallelise with processes instead (see
-    tests/bench_parallel.py for the measured efficiency of both)."""
-    return requested or 1
-
-
-class Evaluator:
-    """Base: ``evaluate(points) -> (log_post, blobs, reasons)``; ``failures`` lists died points."""
-
-    def __init__(self, blob_size: int):
-        self.blob_size = blob_size
-        self.should_stop = never
-        self.failures: list[tuple[list[float], str]] = []
-
-    def close(self) -> None:
-        pass
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.close()
-
-
-class InProcess(Evaluator):
-    """Evaluate in this process (no isolation); for cheap models and single-process debugging."""
-
-    def __init__(self, posterior):
-        super().__init__(len(posterior.blob_names))
-        self.posterior = posterior
-        self.busy = False           # True only while a posterior call runs: the signal handler may interrupt it
-
-    def evaluate(self, points):
-        n = len(points)
-        lp, blobs, reasons = np.empty(n), np.empty((n, self.blob_size)), [None] * n
-        for i, x in enumerate(points):
-            if self.should_stop():
-                raise Interrupted
-            self.busy = True
-            try:
-                lp[i], blobs[i], reasons[i] = self.posterior(x)
-            finally:
-                self.busy = False
-        return lp, blobs, reasons
-
-
-def _worker_main(conn, cfg, threads):
-    """Entry point of a worker process: build the posterior once, then evaluate points until EOF."""
-    # The driver decides when workers stop (it kills them): a scheduler's SIGTERM or a Ctrl-C sent to the
-    # whole process group must not look like a theory-code crash and cost a point.
+def _worker_main(conn, payload, threads):
+    """Entry point of a worker process: build the log-density once, then evaluate points until EOF."""
+    # A scheduler's SIGTERM or a Ctrl-C sent to the whole process group must not look like a theory-code
+    # crash and cost a point.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
-    set_threads(threads)
-    from infer.model.posterior import Posterior
     try:
-        post = Posterior(cfg)
+        density = build(payload, threads)
+        names = tuple(density.blob_names)
     except Exception as err:  # reported to the driver as one line
-        _send(conn, ("setup-error", f"{err}"))
+        _send(conn, ("setup-error", setup_error(err)))
         return
-    if not _send(conn, ("ready", None)):
+    if not _send(conn, ("ready", names)):
         return
     while True:
         try:
             x = conn.recv()
         except (EOFError, OSError):
             return                                   # the driver has gone: leave quietly
-        if not _send(conn, post(x)):
+        if not _send(conn, density(x)):
             return
 
 
@@ -135,9 +87,9 @@ def _send(conn, message) -> bool:
 
 
 class _Worker:
-    def __init__(self, ctx, cfg, threads):
+    def __init__(self, ctx, payload, threads):
         self.conn, child = ctx.Pipe()
-        self.proc = ctx.Process(target=_worker_main, args=(child, cfg, threads), daemon=True)
+        self.proc = ctx.Process(target=_worker_main, args=(child, payload, threads), daemon=True)
         self.proc.start()
         child.close()
         self.task = None        # index of the point it holds
@@ -153,15 +105,17 @@ class _Worker:
 
 
 class ProcessPool(Evaluator):
-    """``workers`` isolated worker processes (spawned, so no state leaks from the driver)."""
+    """``workers`` isolated worker processes evaluating the log-density ``factory()`` builds in each."""
 
-    def __init__(self, cfg, workers: int, blob_size: int, threads: int = 0, should_stop=never):
-        super().__init__(blob_size)
+    def __init__(self, factory, workers: int, threads: int = 0, should_stop=never):
+        super().__init__()
+        if workers < 1:
+            raise ValueError(f"a process pool needs at least one worker, got {workers}")
         self.should_stop = should_stop          # polled while workers start (a signal during start-up)
-        self.cfg = cfg
+        self.payload = pickled(factory)
         self.threads = threads_for(workers, threads)
         self.ctx = mp.get_context("spawn")
-        self.workers = [_Worker(self.ctx, cfg, self.threads) for _ in range(workers)]
+        self.workers = [_Worker(self.ctx, self.payload, self.threads) for _ in range(workers)]
         self.replaced = 0
         for w in self.workers:
             self._await_ready(w)
@@ -176,10 +130,15 @@ class ProcessPool(Evaluator):
                     tag, msg = "died", None
                 if tag == "ready":
                     w.ready = True
+                    if not self.blob_names:
+                        self.blob_names = msg
                     return
                 self.close()
                 if tag == "setup-error":
-                    raise UserError(msg)
+                    user, text = msg
+                    if user:
+                        raise UserError(text)
+                    raise RuntimeError(f"a worker process could not build the log-density: {text}")
             if w.proc.sentinel in ready or (not ready and not w.proc.is_alive()):
                 if w.conn.poll():
                     continue
@@ -193,7 +152,7 @@ class ProcessPool(Evaluator):
 
     def _replace(self, i):
         self.workers[i].kill()
-        self.workers[i] = _Worker(self.ctx, self.cfg, self.threads)
+        self.workers[i] = _Worker(self.ctx, self.payload, self.threads)
         self.replaced += 1
         self._await_ready(self.workers[i])
 

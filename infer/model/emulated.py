@@ -1,0 +1,142 @@
+"""A run's posterior as the surrogate engine sees it: exact calls, training targets and the emulated posterior.
+
+The surrogate engine (`infer.sampling.engine`) knows no cosmology; this module supplies what it asks of a
+`Problem`:
+
+* ``best_fit(evaluate)`` — the MAP and its Laplace covariance by the damped least-squares fit of
+  `infer.fit.bestfit` (Levenberg–Marquardt on the whitened band-power residuals), its exact calls made
+  through the engine's ``evaluate`` so that they are logged and replayed like every other exact call;
+* ``targets(X, blobs)`` — the *binned theory band powers* B(θ) at exact points, recovered exactly from the
+  model band powers m = c² (B + Σ_k A_k F_k) that the exact calls return (`infer.fit.bands`), by undoing
+  the nuisance terms at each point;
+* ``train(X, Y, laplace)`` — a `infer.theory.surrogate.Surrogate` of B(θ_theory) over the sampled inputs
+  of the theory only (PCA of the whitened band powers plus the regression chosen by held-out Δχ²), and the
+  vectorised surrogate log-posterior built on it: **priors, nuisance terms and the Gaussian likelihood
+  stay exact**, only the Boltzmann call is replaced (ln p̃ = ln π(θ) − ½ χ²(d, c²(B̃ + Σ A F)) − ½ ln det 2πC).
+
+Exact calls use `infer.fit.bands.BandModelFactory` (blob = model band powers, then the theory's derived
+values), so one kind of exact call serves the fit, the design, the training and the correction; the
+chain-style blob ``[ln L, derived…, χ²]`` of each exact draw is rebuilt from it by `chain_blobs`.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import linalg
+
+from infer.fit.bands import BandModelFactory
+from infer.model.nuisance import CALIBRATION
+from infer.sampling.engine import Laplace
+
+
+class EmulatedProblem:
+    """The engine's view of one run (``cfg``); ``model`` is a built `infer.fit.bands.BandModel`."""
+
+    def __init__(self, cfg, model=None, surrogate_options: dict | None = None, fit_starts: int = 1):
+        self.cfg = cfg
+        self.factory = BandModelFactory(cfg)
+        self.model = model if model is not None else self.factory()
+        post = self.model.posterior
+        self.names = post.names
+        self.priors, self.like = post.priors, post.like
+        self.lower, self.upper = post.priors.lower, post.priors.upper
+        self.n_bands = self.like.n
+        inputs = set(post.theory.inputs)
+        self.theory_index = np.array([i for i, n in enumerate(self.names) if n in inputs], dtype=int)
+        self.nuisance_names = [n for n in post._nuisance]
+        self.fixed = dict(post.fixed)
+        self.options = dict(surrogate_options or {})
+        self.fit_starts = fit_starts
+        self.fit_result = None
+        self.surrogate = None
+        L = np.asarray(self.like._chol)
+        self._chol = L
+        self._data = np.asarray(self.like.data.value, float)
+
+    # -- nuisance terms, vectorised ------------------------------------------------------------------
+    def _nuisance(self, X):
+        """Per row of X: calibration c (n,) and every foreground amplitude {name: (n,)}."""
+        X = np.atleast_2d(X)
+        vals = {}
+        for name in [CALIBRATION] + [n for n, _ in self.like.nuisance.templates]:
+            if name in self.names:
+                vals[name] = X[:, self.names.index(name)]
+            else:
+                from infer.model.nuisance import NUISANCE
+                vals[name] = np.full(len(X), float(self.fixed.get(name, NUISANCE[name])))
+        return vals
+
+    def model_from_theory(self, X, B):
+        """m = c² (B + Σ_k A_k F_k) per row (the `infer.model.nuisance` model, vectorised)."""
+        nu = self._nuisance(X)
+        m = np.array(B, float, copy=True)
+        for name, f in self.like.nuisance.templates:
+            m += nu[name][:, None] * f[None, :]
+        return m * (nu[CALIBRATION] ** 2)[:, None]
+
+    def targets(self, X, blobs):
+        """Binned theory B (n, N) from the model band powers in the exact blobs, nuisance undone."""
+        nu = self._nuisance(X)
+        B = np.asarray(blobs, float)[:, :self.n_bands] / (nu[CALIBRATION] ** 2)[:, None]
+        for name, f in self.like.nuisance.templates:
+            B = B - nu[name][:, None] * f[None, :]
+        return B
+
+    # -- the engine's stages -----------------------------------------------------------------------
+    def best_fit(self, evaluate) -> Laplace:
+        from infer.fit import bestfit
+
+        class Logged:
+            failures: list = []
+
+            def evaluate(self, points):
+                return evaluate(points)
+
+        res = bestfit.fit(self.cfg, starts=self.fit_starts, evaluator=Logged(), model=self.model)
+        self.fit_result = res
+        mean = np.array([res.best[n] for n in self.names])
+        cov = np.array(res.covariance, float)
+        cov = 0.5 * (cov + cov.T)
+        return Laplace(mean, cov, res.calls, {"converged": res.converged, "reason": res.reason,
+                                              "chi2": res.chi2, "at_bound": res.at_bound})
+
+    def train(self, X, Y, laplace: Laplace):
+        from infer.theory.surrogate import Surrogate
+        idx = self.theory_index
+        sur = Surrogate.fit(X[:, idx], Y, self._chol, laplace.mean[idx], laplace.cov[np.ix_(idx, idx)],
+                            **self.options)
+        self.surrogate = sur
+        return self.logpost_function(sur), sur.describe()
+
+    def logpost_function(self, sur):
+        """The vectorised surrogate log-posterior ln p̃(X) (n,) for a fitted surrogate."""
+        idx, L, d, lognorm, priors = self.theory_index, self._chol, self._data, self.like.lognorm, self.priors
+
+        def logpost(X):
+            X = np.atleast_2d(np.asarray(X, float))
+            lp = priors.logpdf_many(X)
+            ok = np.isfinite(lp)
+            out = np.full(len(X), -np.inf)
+            if ok.any():
+                m = self.model_from_theory(X[ok], sur.predict_many(X[ok][:, idx]))
+                z = linalg.solve_triangular(L, (d[None, :] - m).T, lower=True, check_finite=False)
+                out[ok] = lp[ok] - 0.5 * np.einsum("ij,ij->j", z, z) - lognorm
+            return out
+        return logpost
+
+    # -- results in the chain's vocabulary ---------------------------------------------------------------
+    def chain_blobs(self, X, log_post, blobs):
+        """ln L (n,), derived (n, D) with D = theory derived values then χ², from exact BandModel blobs."""
+        blobs = np.asarray(blobs, float)
+        m = blobs[:, :self.n_bands]
+        ok = np.isfinite(log_post)
+        chi2 = np.full(len(m), np.nan)
+        if ok.any():
+            z = linalg.solve_triangular(self._chol, (self._data[None, :] - m[ok]).T, lower=True)
+            chi2[ok] = np.einsum("ij,ij->j", z, z)
+        log_like = -0.5 * chi2 - self.like.lognorm
+        derived = np.concatenate([blobs[:, self.n_bands:], chi2[:, None]], axis=1)
+        return log_like, derived
+
+    @property
+    def derived_names(self):
+        return tuple(self.model.derived_names) + ("chi2",)
