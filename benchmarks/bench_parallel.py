@@ -256,20 +256,37 @@ def kappa_figure(folder: Path, steps: int, quick_data_dir: Path):
     return kappa, v.tau_max
 
 
+def _step_calls(E, W, n, t_o, batched, p_snooker=0.2):
+    """Expected seconds of theory calls per step with the default DE (0.8) + snooker (0.2) move mixture:
+    a DE ensemble updates in 2 halves of W/2 walkers, a snooker ensemble in 4 quarters of W/4 (emcee's
+    DESnookerMove, nsplits = 4). Unbatched, ensembles step one after another; batched (infer's lock-step),
+    sub-step j of every ensemble goes into one call, so a step is 2 calls, or 4 if any ensemble snookers."""
+    total = 0.0
+    for s in range(E + 1):                                # s ensembles drew the snooker move
+        prob = math.comb(E, s) * p_snooker ** s * (1 - p_snooker) ** (E - s)
+        if batched:
+            calls = [(E - s) * (W // 2) + s * (W // 4)] * 2 + ([s * (W // 4)] * 2 if s else [])
+        else:
+            calls = [W // 2] * (2 * (E - s)) + [W // 4] * (4 * s)
+        total += prob * sum(math.ceil(c / n) for c in calls if c) * t_o
+    return total
+
+
 def scaling_model(t, o, ckpt, check, *, kappa, tau, W=64, E=4, k=50, m=50, tau_multiple=50,
                   ranks=(16, 32, 64, 128, 256)):
-    """Wall time per effective sample (and the run-length floor) for N ranks; see the module docstring."""
+    """Wall time per effective sample (and the run-length floor) for N ranks; see the module docstring.
+    (a) W walkers, ensembles stepped one after another; (b) W = 2(N − 1), one after another; (c) W walkers,
+    every ensemble's sub-steps batched into one call (what the driver does)."""
     rows = []
     for N in ranks:
         n = N - 1
         row = {"ranks": N}
-        for label, per_call, calls, walkers in (("a", W // 2, 2 * E, W), ("b", n, 2 * E, 2 * n),
-                                                ("c", E * W // 2, 2, W)):
-            rounds = math.ceil(per_call / n)
-            busy = per_call / (rounds * n)
+        for label, walkers, batched in (("a", W, False), ("b", 2 * n, False), ("c", W, True)):
             scale = walkers / W                         # chain size and check cost grow with the walkers
-            step = calls * rounds * (t + o) + scale * (ckpt / k + check / m)
-            row[label] = {"walkers": walkers, "rounds": rounds, "busy": busy, "step_s": step,
+            theory = _step_calls(E, walkers, n, t + o, batched)
+            step = theory + scale * (ckpt / k + check / m)
+            busy = E * walkers * t / (n * theory) if theory else 0.0
+            row[label] = {"walkers": walkers, "busy": busy, "step_s": step,
                           "wall_per_ess_s": kappa * step / (E * walkers),
                           "efficiency": E * walkers * t / (n * step),
                           "floor_h": tau_multiple * tau * step / 3600}
@@ -309,8 +326,16 @@ def main(argv=None) -> int:
     ap.add_argument("--kappa", type=float, help="calls per effective sample for the model (default: measured)")
     ap.add_argument("--tau", type=float, help="τ_int in steps for the model (default: measured)")
     ap.add_argument("--json", help="also write every figure to this file")
+    ap.add_argument("--model-only", nargs=4, type=float, metavar=("T", "O", "CKPT", "CHECK"),
+                    help="print only the scaling model, from given seconds per point, per-point overhead, "
+                         "checkpoint and check cost per 50 steps (with --kappa and --tau)")
     ap.add_argument("--mpi-child", nargs=4, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    if args.model_only:
+        t_, o_, c_, a_ = args.model_only
+        kappa, tau = args.kappa or 17.0, args.tau or 16.0
+        print_model(scaling_model(t_, o_, c_, a_, kappa=kappa, tau=tau), t_, o_, c_, a_, kappa, tau)
+        return 0
     if args.mpi_child:
         return mpi_child(args.mpi_child[0], args.mpi_child[1], int(args.mpi_child[2]), args.mpi_child[3] == "1")
 

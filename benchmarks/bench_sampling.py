@@ -30,7 +30,7 @@ from infer.analysis import diagnostics  # noqa: E402
 from infer.cli import main  # noqa: E402
 from infer.model.posterior import Posterior  # noqa: E402
 from infer.forecast.fisher import numerical_fisher  # noqa: E402
-from infer.sampling.driver import make_moves  # noqa: E402
+from infer.sampling.moves import make_moves  # noqa: E402
 
 
 def median_time(fn, n):

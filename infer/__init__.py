@@ -1,8 +1,10 @@
 """infer: cosmological parameters from CMB band powers.
 
-The data path, one module per step: `config` → `dataset` → `theory` → `likelihood` (+ `priors`, joined in
-`posterior`) → `evaluate` (where the posterior runs: in-process, worker processes, MPI ranks) →
-`sampler` (the ensemble driver) → `store` (the crash-safe chain file) → `diagnostics` → `summary`/`plots`.
-`mock` makes datasets for invented experiments; `cli` is the `infer` command.
+The data path, one subpackage per step (see DEVELOPERS.md): `config` (the run file) → `data` (band
+powers) → `theory` (Boltzmann backends and the band-power surrogate) → `model` (priors, nuisance terms,
+likelihood, posterior) → `parallel` (where a log-density runs: in process, worker processes, MPI ranks) →
+`sampling` (the ensemble driver and the surrogate engine) and `fit` (best fit) → `store` (crash-safe chain
+files) → `analysis` (diagnostics, marginals, importance weights) → `report` (tables, figures, status).
+`forecast` makes mock datasets for invented experiments and Fisher matrices; `cli` is the `infer` command.
 """
-__version__ = "0.1.0"
+__version__ = "0.2.0"

@@ -17,7 +17,6 @@ import argparse
 import json
 import logging
 import os
-import signal
 import sys
 import time
 from pathlib import Path
@@ -25,7 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from infer import __version__, paths
-from infer.errors import EXIT_INTERNAL, EXIT_OK, EXIT_PAUSED, EXIT_PIPE, EXIT_USAGE, UserError
+from infer.errors import EXIT_INTERNAL, EXIT_OK, EXIT_PIPE, EXIT_USAGE, UserError
 
 log = logging.getLogger("infer")
 
@@ -52,92 +51,10 @@ def _override(cfg, args):
     return replace(cfg, sampling=sampling, stopping=stopping)
 
 
-def cap_threads(cfg):
-    """Before the theory code is first loaded in this process (see `infer.parallel.cap_in_process_threads`)."""
-    from infer.parallel import cap_in_process_threads
-    cap_in_process_threads(cfg.sampling.workers, cfg.sampling.threads_per_worker)
-
-
-def make_evaluator(cfg, posterior, early=None):
-    """The run's evaluator: the posterior's factory on MPI ranks, worker processes or (workers = 0) the
-    already built ``posterior`` in this process."""
-    from infer.model.posterior import PosteriorFactory
-    from infer.parallel import make_evaluator as build, never
-    stop = early.is_set if early is not None else never
-    return build(PosteriorFactory(cfg), cfg.sampling.workers, cfg.sampling.threads_per_worker, should_stop=stop,
-                 built=posterior, points_per_call=cfg.sampling.walkers // 2)
-
-
-def _check_can_set_aside(chain: Path):
-    """``--replace`` renames an existing chain file: only ever a file that is an infer chain."""
-    from infer.store.chainfile import FORMAT
-    paths.replaceable(chain, FORMAT, "chain", "sets aside")
-
-
-def _report(outcome, chain_path):
-    v = outcome.verdict
-    if outcome.code == EXIT_PAUSED:
-        log.info("paused after %d steps (%s); checkpoint written to %s; continue with `infer resume %s`",
-                 outcome.steps, outcome.reason, chain_path, chain_path)
-    elif outcome.reason == "converged":
-        log.info("converged after %d steps: every stopping target met (R̂max %.4f, ESS min %.0f)",
-                 outcome.steps, v.rhat_max, min(v.ess_bulk_min, v.ess_tail_min))
-    else:
-        why = "; ".join(v.missing) if v is not None else "no convergence check was reached"
-        log.info("reached the requested %d steps WITHOUT meeting the stopping targets (%s); the chain is "
-                 "not converged — extend it with `infer resume %s --steps N`", outcome.steps, why, chain_path)
-
-
-class _EarlySignals:
-    """SIGTERM/SIGINT before the driver takes over (start-up, starting ball, worker start): remember the
-    signal so that evaluators abandon their work and the command exits 75 like a paused run."""
-
-    def __init__(self):
-        self.signal: str | None = None
-
-    def __enter__(self):
-        self._old = {s: signal.signal(s, self._handler) for s in (signal.SIGTERM, signal.SIGINT)}
-        return self
-
-    def _handler(self, signum, frame):
-        self.signal = signal.Signals(signum).name
-
-    def is_set(self) -> bool:
-        return self.signal is not None
-
-    def __exit__(self, *exc):
-        for s, h in self._old.items():
-            signal.signal(s, h)
-
-
-def _paused_before_start(early, what):
-    log.info("stopped by %s %s; the chain is unchanged (exit 75: run the same command again)",
-             early.signal or "a signal", what)
-    return EXIT_PAUSED
-
-
-def _drive(cfg, store, evaluator, state, start_event, clock, early):
-    from infer.sampling.driver import Driver
-    driver = Driver(cfg, store, evaluator, state)
-    driver.stop_requested = early.signal           # a signal during start-up pauses at once
-    outcome = driver.run(cfg.sampling.steps, cfg.stopping.time_limit, clock, start_event)
-    _report(outcome, store.path)
-    if driver.rejections:
-        log.info("points given ln p = -inf, by reason: %s",
-                 ", ".join(f"{k} {v}" for k, v in sorted(driver.rejections.items())))
-    return outcome.code
-
-
 # -- commands --------------------------------------------------------------------------------------------
 def cmd_run(args) -> int:
     from infer import config
-    from infer.store.lock import ChainLock
-    from infer.model.posterior import Posterior
-    from infer.sampling.driver import event
-    from infer.sampling.start import starting_ball
-    from infer.store.chainfile import ChainStore
-    from infer.parallel import Interrupted
-    from infer.model import provenance
+    from infer.run import cap_threads, check_can_set_aside, start
     from infer.sampling.driver import process_age
     clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     cfg = _override(config.load(args.config), args)
@@ -146,121 +63,11 @@ def cmd_run(args) -> int:
     chain = Path(cfg.chain_path)
     paths.file_folder(chain)
     if chain.exists() and args.replace:
-        _check_can_set_aside(chain)
+        check_can_set_aside(chain)
     if args.summarize:
         paths.output_folder(cfg.summary_dir, "summary folder")
     cap_threads(cfg)
-    if cfg.sampling.engine == "surrogate":
-        return _run_surrogate(cfg, args, chain, clock)
-    posterior = Posterior(cfg)                       # validates dataset, theory and parameters first
-    with _EarlySignals() as early, ChainLock(str(chain)):
-        store = ChainStore(str(chain))
-        store.remove_strays()
-        _set_aside(chain, args)
-        log.info("run '%s': %d sampled parameters, %d bands (%s), %d ensembles × %d walkers, up to %d steps",
-                 cfg.name, len(posterior.names), posterior.like.n, "/".join(posterior.like.kinds),
-                 cfg.sampling.ensembles, cfg.sampling.walkers, cfg.sampling.steps)
-        evaluator = None
-        try:
-            evaluator = make_evaluator(cfg, posterior, early)
-            start = starting_ball(cfg, evaluator, posterior.blob_names)
-        except Interrupted:
-            if evaluator is not None:
-                evaluator.close()
-            return _paused_before_start(early, "before the first checkpoint (no chain file was written)")
-        except BaseException:
-            if evaluator is not None:
-                evaluator.close()
-            raise
-        store.create(names=posterior.names, derived_names=posterior.derived_names,
-                     tex=posterior.labels(),
-                     bounds=posterior.priors.bounds, start=start,
-                     provenance=provenance.record(cfg, posterior))
-        log.info("chain file: %s", chain)
-        try:
-            code = _drive(cfg, store, evaluator, store.read(), event("start", steps=0, workers=cfg.sampling.workers),
-                          clock, early)
-        finally:
-            evaluator.close()
-    return _maybe_summarize(args, chain, code)
-
-
-def _set_aside(chain: Path, args) -> None:
-    """An existing chain at the path: refused, or with ``--replace`` renamed (never deleted)."""
-    if chain.exists():
-        if not args.replace:
-            raise UserError(f"{chain} already exists: continue it with `infer resume {chain}`, or pass "
-                            "--replace to set it aside (it is renamed, never deleted)")
-        _check_can_set_aside(chain)
-        aside = chain.with_name(chain.name + time.strftime(".replaced-%Y%m%d-%H%M%S"))
-        os.replace(chain, aside)
-        log.info("set the existing chain aside as %s", aside)
-
-
-def _run_surrogate(cfg, args, chain: Path, clock) -> int:
-    """``infer run`` with ``[sampling] engine = "surrogate"`` (`infer.surrogate_run`)."""
-    from infer import surrogate_run
-    from infer.sampling.driver import event
-    from infer.store.enginefile import EngineFile
-    from infer.store.lock import ChainLock
-    problem = surrogate_run.problem_for(cfg)         # validates dataset, theory and parameters first
-    log.info("run '%s' with the surrogate engine: %d sampled parameters (%d emulated), %d bands (%s), "
-             "weight-ESS target %.0f", cfg.name, len(problem.names), len(problem.theory_index), problem.n_bands,
-             "/".join(problem.like.kinds), cfg.stopping.ess_above)
-    with _EarlySignals() as early, ChainLock(str(chain)):
-        store = EngineFile(str(chain))
-        store.remove_strays()
-        _set_aside(chain, args)
-        surrogate_run.create(cfg, store, problem)
-        log.info("chain file: %s", chain)
-        code = surrogate_run.execute(cfg, store, problem, early=early, clock=clock,
-                                     start_event=event("start", calls=0, workers=cfg.sampling.workers))
-    return _maybe_summarize(args, chain, code)
-
-
-def _resume_surrogate(args, chain: Path, clock) -> int:
-    """``infer resume`` of a surrogate-engine chain: the engine re-runs over the stored exact calls."""
-    from dataclasses import replace
-    from infer import config, surrogate_run
-    from infer.sampling.driver import event
-    from infer.store.enginefile import EngineFile
-    from infer.store.lock import ChainLock
-    if args.steps is not None:
-        raise UserError("--steps applies to ensemble runs; a surrogate-engine run is bounded by "
-                        "[surrogate] max_exact (give a run file with a larger one via --config)")
-    with _EarlySignals() as early, ChainLock(str(chain)):
-        store = EngineFile(str(chain))
-        store.remove_strays()
-        state = store.read()
-        old = stored_config(state)
-        cfg, changes = old, []
-        if args.config:
-            new = config.load(args.config)
-            refused, changes = config.diff(old, new)
-            if refused:
-                raise UserError(f"refusing to resume {args.chain} with {args.config}: it changes the posterior "
-                                f"or the engine ({'; '.join(refused)}); start a new chain instead")
-            cfg = new
-        cfg = _override(replace(cfg, chain_path=str(chain), summary_dir=old.summary_dir), args)
-        for flag, val in (("workers", args.workers), ("time_limit", args.time_limit)):
-            if val is not None:
-                changes.append(f"--{flag.replace('_', '-')} {val}")
-        if args.summarize:
-            paths.output_folder(cfg.summary_dir, "summary folder")
-        cap_threads(cfg)
-        problem = surrogate_run.problem_for(cfg)
-        if problem.model.posterior.data.sha256 != state.provenance.get("dataset_sha256"):
-            raise UserError(f"refusing to resume {args.chain}: the dataset {cfg.dataset['file']} has changed "
-                            "since the chain was started (SHA-256 differs)")
-        if state.report is not None and state.report.get("converged") and not changes:
-            log.info("%s has converged already (weight ESS %.0f, k̂ %.2f); nothing to do", chain,
-                     state.report["ess"], state.report["khat"])
-            return _maybe_summarize(args, chain, EXIT_OK)
-        log.info("resuming %s after %d exact calls%s", chain, state.calls_done,
-                 f" (changes: {'; '.join(changes)})" if changes else "")
-        code = surrogate_run.execute(cfg, store, problem, early=early, clock=clock,
-                                     start_event=event("resume", calls=state.calls_done, changes=changes))
-    return _maybe_summarize(args, chain, code)
+    return _maybe_summarize(args, chain, start(cfg, chain, args.replace, clock))
 
 
 def _maybe_summarize(args, chain, code):
@@ -277,80 +84,40 @@ def _replace_paths(cfg, chain):
     return replace(cfg, chain_path=str(p), summary_dir=str(p.with_suffix("")))
 
 
-def stored_config(state):
-    from infer import config
-    prov = state.provenance
-    return config.parse(prov["config_text"], prov["config_path"])
-
-
 def cmd_resume(args) -> int:
-    from infer import config
-    from infer.store.lock import ChainLock
-    from infer.model.posterior import Posterior
-    from infer.sampling.driver import event
-    from infer.store.chainfile import ChainStore
-    from infer.parallel import Interrupted
+    from infer.run import resume
     from infer.sampling.driver import process_age
     clock = time.monotonic() - process_age()       # the wall-time budget counts from process start
     chain = Path(args.chain).resolve()
     if not chain.exists():
         raise UserError(f"{args.chain}: no such chain file")
     paths.readable(chain, "chain file")
-    from infer.store.enginefile import engine_of
-    if engine_of(chain) == "surrogate":
-        return _resume_surrogate(args, chain, clock)
-    with _EarlySignals() as early, ChainLock(str(chain)):
-        store = ChainStore(str(chain))
-        store.remove_strays()
-        state = store.read()
-        old = stored_config(state)
-        changes = []
-        cfg = old
-        if args.config:
-            new = config.load(args.config)
-            refused, changes = config.diff(old, new)
-            if refused:
-                raise UserError(f"refusing to resume {args.chain} with {args.config}: it changes the posterior "
-                                f"or the sampler ({'; '.join(refused)}); start a new chain instead")
-            cfg = new
-        from dataclasses import replace
-        cfg = replace(cfg, chain_path=str(chain), summary_dir=old.summary_dir)
-        cfg = _override(cfg, args)
-        for flag, val in (("steps", args.steps), ("workers", args.workers), ("time_limit", args.time_limit)):
-            if val is not None:
-                changes.append(f"--{flag.replace('_', '-')} {val}")
-        if args.summarize:
-            paths.output_folder(cfg.summary_dir, "summary folder")
-        cap_threads(cfg)
-        posterior = Posterior(cfg)
-        if posterior.data.sha256 != state.provenance.get("dataset_sha256"):
-            raise UserError(f"refusing to resume {args.chain}: the dataset {cfg.dataset['file']} has changed "
-                            "since the chain was started (SHA-256 differs)")
-        if state.steps_done >= cfg.sampling.steps:
-            log.info("%s already holds %d steps (requested %d); nothing to do — ask for more with --steps N",
-                     chain, state.steps_done, cfg.sampling.steps)
-            return EXIT_OK
-        log.info("resuming %s at step %d towards %d%s", chain, state.steps_done, cfg.sampling.steps,
-                 f" (changes: {'; '.join(changes)})" if changes else "")
-        try:
-            evaluator = make_evaluator(cfg, posterior, early)
-        except Interrupted:
-            return _paused_before_start(early, "while the workers started")
-        try:
-            code = _drive(cfg, store, evaluator, state, event("resume", steps=state.steps_done, changes=changes),
-                          clock, early)
-        finally:
-            evaluator.close()
+    changes = [f"--{flag.replace('_', '-')} {val}" for flag, val in
+               (("steps", args.steps), ("workers", args.workers), ("time_limit", args.time_limit)) if val is not None]
+    check = (lambda cfg: paths.output_folder(cfg.summary_dir, "summary folder")) if args.summarize else None
+    code = resume(chain, args.config, lambda cfg: _override(cfg, args), changes, clock, check)
     return _maybe_summarize(args, chain, code)
+
+
+def _stored_config(state):
+    from infer.run import stored_config
+    return stored_config(state)
 
 
 def cmd_status(args) -> int:
     from infer.report.status import status_report
     from infer.store.chainfile import ChainStore
+    from infer.store.enginefile import EngineFile, engine_of
     from infer.store.lock import is_locked, read_holder
+    if engine_of(args.chain) == "surrogate":
+        from infer.report.status import engine_record, engine_status_report
+        state = EngineFile(args.chain).read()
+        print(f"chain     {os.path.abspath(args.chain)}")
+        print(engine_status_report(engine_record(state, _stored_config(state))))
+        return EXIT_OK
     state = ChainStore(args.chain).read()
     holder = read_holder(args.chain) if is_locked(args.chain) else {}
-    print(status_report(state, stored_config(state), args.chain, params=args.params, holder=holder))
+    print(status_report(state, _stored_config(state), args.chain, params=args.params, holder=holder))
     return EXIT_OK
 
 
@@ -361,8 +128,16 @@ def cmd_summarize(args) -> int:
 def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
     from infer.report.summary import summarize_run
     from infer.store.chainfile import ChainStore
+    from infer.store.enginefile import EngineFile, engine_of
+    if engine_of(str(chain)) == "surrogate":
+        from infer.report.summary import summarize_engine_run
+        if burn is not None:
+            raise UserError("--burn applies to ensemble chains; a surrogate-engine sample has no burn-in")
+        state = EngineFile(str(chain)).read()
+        print(summarize_engine_run(state, _stored_config(state), str(chain), out, no_model))
+        return EXIT_OK
     state = ChainStore(str(chain)).read()
-    print(summarize_run(state, stored_config(state), str(chain), out, burn, no_model))
+    print(summarize_run(state, _stored_config(state), str(chain), out, burn, no_model))
     return EXIT_OK
 
 

@@ -110,8 +110,10 @@ def chain_sampler_for(cfg, problem):
     from infer.sampling.surrogate_chain import sample_surrogate
 
     def sample(logpost, laplace, seed, need):
+        # The surrogate chain's own rule (R̂ < 1.01, > 50 τ, ESS ≥ the draws it must provide) is fixed, not the
+        # run's [stopping]: a resume with another weight-ESS target must repeat the same chains.
         return sample_surrogate(logpost, laplace, seed, need, lower=problem.lower, upper=problem.upper,
-                                ensembles=max(2, cfg.sampling.ensembles), rule=cfg.stopping)
+                                ensembles=max(2, cfg.sampling.ensembles))
     return sample
 
 
@@ -211,6 +213,53 @@ def create(cfg, store, problem):
                  tex=post.labels(), bounds=post.priors.bounds, provenance=provenance.record(cfg, post))
 
 
-def check_resumable(state, cfg, chain) -> None:
-    if state.provenance.get("dataset_sha256") is None:
-        raise UserError(f"{chain}: the chain file has no dataset record; cannot resume it")
+
+
+def start(cfg, chain, replace_existing: bool, clock) -> int:
+    """``infer run`` with ``[sampling] engine = "surrogate"``: a new engine chain file, then `execute`."""
+    from infer.run import EarlySignals, set_aside
+    from infer.sampling.driver import event
+    from infer.store.enginefile import EngineFile
+    from infer.store.lock import ChainLock
+    problem = problem_for(cfg)                       # validates dataset, theory and parameters first
+    log.info("run '%s' with the surrogate engine: %d sampled parameters (%d emulated), %d bands (%s), "
+             "weight-ESS target %.0f", cfg.name, len(problem.names), len(problem.theory_index), problem.n_bands,
+             "/".join(problem.like.kinds), cfg.stopping.ess_above)
+    with EarlySignals() as early, ChainLock(str(chain)):
+        store = EngineFile(str(chain))
+        store.remove_strays()
+        set_aside(chain, replace_existing)
+        create(cfg, store, problem)
+        log.info("chain file: %s", chain)
+        return execute(cfg, store, problem, early=early, clock=clock,
+                       start_event=event("start", calls=0, workers=cfg.sampling.workers))
+
+
+def resume(chain, config_path, override, extra_changes, clock, summary_check=None) -> int:
+    """``infer resume`` of an engine chain: the engine re-runs over the stored exact calls (replayed) and
+    computes the rest; a converged run with no change is left alone."""
+    from infer.run import EarlySignals, cap_threads, check_dataset, resumed_config
+    from infer.sampling.driver import event
+    from infer.store.enginefile import EngineFile
+    from infer.store.lock import ChainLock
+    if any(c.startswith("--steps") for c in extra_changes):
+        raise UserError("--steps applies to ensemble runs; a surrogate-engine run is bounded by "
+                        "[surrogate] max_exact (give a run file with a larger one via --config)")
+    with EarlySignals() as early, ChainLock(str(chain)):
+        store = EngineFile(str(chain))
+        store.remove_strays()
+        state = store.read()
+        cfg, changes = resumed_config(state, chain, config_path, override, extra_changes)
+        if summary_check is not None:
+            summary_check(cfg)
+        cap_threads(cfg)
+        problem = problem_for(cfg)
+        check_dataset(state, problem.model.posterior.data, cfg, chain)
+        if state.report is not None and state.report.get("converged") and not changes:
+            log.info("%s has converged already (weight ESS %.0f, k̂ %.2f); nothing to do", chain,
+                     state.report["ess"], state.report["khat"])
+            return EXIT_OK
+        log.info("resuming %s after %d exact calls%s", chain, state.calls_done,
+                 f" (changes: {'; '.join(changes)})" if changes else "")
+        return execute(cfg, store, problem, early=early, clock=clock,
+                       start_event=event("resume", calls=state.calls_done, changes=changes))

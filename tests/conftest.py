@@ -86,3 +86,10 @@ def analytic_posterior(data_path: Path):
     cov = np.linalg.inv(A.T @ cinv @ A)
     mean = cov @ A.T @ cinv @ data.value
     return mean, cov
+
+
+def pytest_collection_modifyitems(config, items):
+    """Every test that calls the real Boltzmann code is also slow: the fast tier (`-m "not slow"`) runs none."""
+    for item in items:
+        if item.get_closest_marker("camb") is not None and item.get_closest_marker("slow") is None:
+            item.add_marker(pytest.mark.slow)

@@ -35,6 +35,7 @@ def test_best_sample_ignores_the_burn_in():
     assert info["best"]["step"] == 30 and cons[0].best == pos[30, 0, 1, 0]
 
 
+@pytest.mark.slow
 def test_summary_fit_line_is_the_kept_best_sample_and_matches_scipy(write_config):
     cfg_path, chain = write_config(steps=60, check_every=20)
     assert main(["--quiet", "run", str(cfg_path)]) == 0

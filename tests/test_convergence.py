@@ -10,12 +10,14 @@ import subprocess
 import sys
 
 import numpy as np
+import pytest
 
 from infer.analysis import diagnostics
 from infer.cli import main
 from infer.store.chainfile import ChainStore
 
 
+@pytest.mark.slow
 def test_run_stops_itself_when_targets_are_met(write_config, capsys):
     cfg, chain = write_config(steps=3000, check_every=50,
                               stopping_extra="ess_above = 400\ntau_multiple = 30\nmin_steps = 100")
@@ -70,6 +72,7 @@ def test_batch_progress_lines_and_status(write_config, tmp_path):
         assert word in st.stdout, (word, st.stdout)
 
 
+@pytest.mark.slow
 def test_summary_states_burn_in_and_verdict(write_config):
     cfg, chain = write_config(steps=200, check_every=100)
     assert main(["--quiet", "run", str(cfg), "--summarize"]) == 0

@@ -161,6 +161,7 @@ if __name__ == "__main__":          # spawned worker processes import this file 
 """
 
 
+@pytest.mark.slow
 def test_mpi_three_ranks_agree_bit_for_bit_and_keep_an_equal_factory(tmp_path):
     from test_parallel import _env, find_mpiexec, finish
     script, out = tmp_path / "mpi_gauss.py", tmp_path / "mpi_gauss.npz"

@@ -193,6 +193,7 @@ def _cli(*args, cwd=None):
                           cwd=cwd, timeout=300)
 
 
+@pytest.mark.slow
 def test_command_writes_the_result_and_refuses_bad_options(write_config, tmp_path):
     # A theory that kills its own process at any call: a bad option must be refused before one.
     poisoned, _ = write_config("poisoned.toml",
@@ -279,6 +280,7 @@ def test_demo_with_tau_and_foreground_free_reports_the_bounds(tmp_path):
     assert res.at_bound.get("fg_tt_amp") == "lower" and "prior bound" in res.laplace_note
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("workers", [0, 1])
 def test_fit_under_mpi_equals_the_serial_fit(write_config, tmp_path, workers):
     from test_parallel import launch

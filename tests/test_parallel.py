@@ -130,6 +130,7 @@ def serial_chain(folder, quick_data):
 
 
 # -- local process pools ---------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_pool_of_three_equals_serial(folder, quick_data, serial_chain):
     cfg, chain = write(folder, quick_data, "pool3", steps=STEPS, seed=SEED, workers=3)
     assert main(["--quiet", "run", str(cfg)]) == EXIT_OK
@@ -155,6 +156,7 @@ def test_threads_never_depend_on_the_worker_count_and_oversubscription_is_found(
 
 
 # -- MPI -------------------------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_mpi_two_ranks_equal_serial(folder, quick_data, serial_chain):
     """Default isolation (the theory in a worker process per rank); other commands run on rank 0 only."""
     cfg, chain = write(folder, quick_data, "mpi2", steps=STEPS, seed=SEED, workers=1)
@@ -167,6 +169,7 @@ def test_mpi_two_ranks_equal_serial(folder, quick_data, serial_chain):
     assert out.count(f"steps     {STEPS} of up to {STEPS}") == 1, out
 
 
+@pytest.mark.slow
 def test_mpi_three_ranks_equal_serial(folder, quick_data, serial_chain):
     cfg, chain = write(folder, quick_data, "mpi3", steps=STEPS, seed=SEED, workers=0)
     code, out, err = launch(3, "run", str(cfg))
@@ -175,6 +178,7 @@ def test_mpi_three_ranks_equal_serial(folder, quick_data, serial_chain):
     assert_same_chain(serial_chain, chain)
 
 
+@pytest.mark.slow
 def test_resume_across_mpi_sizes_and_serial(folder, quick_data, serial_chain):
     """Start on 3 ranks, continue on 2 ranks, finish serially: the serial chain, value for value."""
     cfg, chain = write(folder, quick_data, "mixed", steps=STEPS, seed=SEED, workers=0)
@@ -187,6 +191,7 @@ def test_resume_across_mpi_sizes_and_serial(folder, quick_data, serial_chain):
     assert_same_chain(serial_chain, chain)
 
 
+@pytest.mark.slow
 def test_mpi_theory_crash_costs_one_point(folder, quick_data):
     """A segfaulting theory (fault injection) under MPI with isolated theory processes: each crash gives
     that point ln p = −∞ and a fresh process, the job goes on, and the chain equals a serial run in which
@@ -233,6 +238,7 @@ def _steps_in(chain: Path) -> int:
         return -1
 
 
+@pytest.mark.slow
 def test_sigterm_to_mpiexec_pauses_with_75_and_resumes_exactly(folder, quick_data):
     """The scheduler's SIGTERM goes to mpiexec, which forwards it to every rank's process group (the rank's
     isolated theory process included). Rank 0 abandons the step in flight, checkpoints, collects the points
@@ -266,6 +272,7 @@ def test_sigterm_to_mpiexec_pauses_with_75_and_resumes_exactly(folder, quick_dat
 
 
 # -- the Slurm job script --------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_slurm_job_script_runs_then_resubmits_then_resumes(folder, quick_data, tmp_path):
     """configs/slurm_job.sh with stand-ins for squeue (time left) and sbatch (records the resubmission).
     Job 1 has a 10 s budget for a run that needs at least 9.6 s of theory time after start-up, so it must

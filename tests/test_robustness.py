@@ -152,6 +152,7 @@ def alive(pid: int) -> bool:
 
 
 # -- 1. hard kills at random moments, then exact resume ------------------------------------------------
+@pytest.mark.slow
 def test_sigkill_at_random_moments_then_resume_gives_the_uninterrupted_chain(write_config):
     """12 SIGKILLs of the whole process group (what a scheduler does): 4 at a random time in the first
     1.2 s after launch (start-up, lock, starting ball, reading the chain), 4 at a random time 0–0.5 s after
@@ -216,6 +217,7 @@ def test_sigkill_at_random_moments_then_resume_gives_the_uninterrupted_chain(wri
 
 
 # -- 2. live readers -----------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_readers_in_another_process_always_see_a_consistent_prefix(write_config, tmp_path):
     """While `infer run` checkpoints after every step, this process reads the chain ≥ 200 times (and runs
     `infer status` and `infer summarize`): every read is self-consistent, free of NaN rows, never shorter
@@ -262,6 +264,7 @@ def test_readers_in_another_process_always_see_a_consistent_prefix(write_config,
 
 
 # -- 3. SIGTERM during a long theory call, and the wall-time budget -------------------------------------------
+@pytest.mark.slow
 @pytest.mark.parametrize("workers", [1, 0])
 def test_sigterm_during_a_20_second_theory_call_pauses_within_seconds(write_config, tmp_path, workers):
     """The first step's first theory call sleeps 20 s; SIGTERM arrives during it. The run abandons the
@@ -293,6 +296,7 @@ def test_sigterm_during_a_20_second_theory_call_pauses_within_seconds(write_conf
     print(f"\nSIGTERM with workers={workers}: exit {code} {elapsed:.2f} s after the signal, 20-s call abandoned")
 
 
+@pytest.mark.slow
 def test_time_limit_pauses_cleanly_and_the_run_resumes(write_config):
     cfg, chain = write_config("budget.toml", steps=100000, walkers=8, ensembles=2, workers=0, seed=43,
                               checkpoint_steps=1000, theory_extra="delay_seconds = 0.002")
@@ -310,6 +314,7 @@ def test_time_limit_pauses_cleanly_and_the_run_resumes(write_config):
     print(f"\n--time-limit 4: stopped after {st.steps_done} steps, process ended {elapsed:.1f} s after start")
 
 
+@pytest.mark.slow
 def test_time_limit_abandons_a_theory_call_that_would_overrun_it(write_config, tmp_path):
     """Library level: a 30-s theory call in a worker and a 4-s budget; the driver gives up the call and
     checkpoints instead of overrunning the budget by 26 s."""
@@ -332,6 +337,7 @@ def test_time_limit_abandons_a_theory_call_that_would_overrun_it(write_config, t
 
 
 # -- 4. one writer ---------------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_second_writer_is_refused_and_a_killed_writers_lock_is_cleared(write_config, tmp_path, capsys):
     cfg, chain = write_config("locked.toml", steps=100000, walkers=8, ensembles=2, workers=0, seed=53,
                               checkpoint_steps=5, theory_extra="delay_seconds = 0.002")
@@ -381,6 +387,7 @@ def _copy(src: Path, dst: Path) -> Path:
     return dst
 
 
+@pytest.mark.slow
 def test_truncated_chain_gives_a_clear_error_and_salvage_recovers_a_resumable_prefix(long_chain, tmp_path):
     ref = ChainStore(str(long_chain)).read()
     bad = _copy(long_chain, tmp_path / "truncated.h5")
@@ -522,6 +529,7 @@ def test_lookup3_matches_the_published_values_and_hdf5(tmp_path):
 
 
 # -- 6. changed run file on resume ----------------------------------------------------------------------------
+@pytest.mark.slow
 def test_resume_refuses_a_posterior_change_with_a_diff_and_records_allowed_ones(write_config, tmp_path):
     cfg, chain = write_config("orig.toml", steps=10, walkers=8, ensembles=2, checkpoint_steps=25, seed=71)
     assert main(["--quiet", "run", str(cfg)]) == 0
@@ -567,6 +575,7 @@ def _short_chain(write_config, name, folder_name):
     return cfg, target
 
 
+@pytest.mark.slow
 def test_disk_full_during_a_checkpoint_is_one_clear_line_and_the_chain_stays_intact(write_config, tmp_path):
     """A real full disk (a small tmpfs; we are root): `infer resume` fails at its first checkpoint with
     one line and the chain as it was. Then, at library level, disks of several sizes are filled 50 steps
@@ -735,6 +744,7 @@ def test_user_errors_are_one_line_exit_2(write_config, tmp_path, capsys):
     assert not (tmp_path / "out.h5").exists()
 
 
+@pytest.mark.slow
 def test_resume_stops_at_the_same_step_as_an_uninterrupted_converging_run(write_config):
     """A run whose stopping targets are met at a check stops there; paused before that check (at a step
     that is not a check) and resumed, it stops at the same step with the same chain and checks."""

@@ -7,6 +7,7 @@ far from the posterior mass — has the Gaussian posterior N(μ, Σ) with Σ = (
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from infer.cli import main
 from infer.analysis.diagnostics import ess_bulk
@@ -15,6 +16,7 @@ from infer.store.chainfile import ChainStore
 from conftest import analytic_posterior
 
 
+@pytest.mark.slow
 def test_driver_recovers_closed_form_posterior(write_config, quick_data):
     cfg, chain = write_config(steps=1500, walkers=16, ensembles=2, check_every=500)
     assert main(["--quiet", "run", str(cfg)]) == 0

@@ -242,6 +242,7 @@ def _fake_dataset(seed=4):
             model)
 
 
+@pytest.mark.slow
 def test_write_summary_files(tmp_path):
     s = _small_run()
     ds, model = _fake_dataset()

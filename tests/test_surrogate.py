@@ -66,6 +66,7 @@ def test_exact_on_linear_template_model(template_problem, method):
     assert s.n_components == 4               # four amplitudes span the whitened band powers
 
 
+@pytest.mark.slow
 def test_held_out_error_falls_as_design_grows():
     """On the non-linear toy, the reported (k-fold) and independent-test RMS Δχ² fall with n = 20, 40, 80."""
     mu, cov = np.zeros(3), np.eye(3)

@@ -54,6 +54,7 @@ def closed_form_evidence(data_path):
     return ln_lmax + 0.5 * len(mean) * math.log(2 * math.pi) + 0.5 * logdet_s - len(mean) * math.log(3.0)
 
 
+@pytest.mark.slow
 def test_surrogate_run_gives_the_closed_form_posterior_and_evidence(tmp_path, quick_data):
     path, chain = engine_config(tmp_path, quick_data)
     assert main(["--quiet", "run", str(path)]) == 0
@@ -146,3 +147,23 @@ def test_surrogate_table_needs_the_surrogate_engine(tmp_path, quick_data, capsys
     assert main(["run", str(path)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "sampling.engine" in err[0]
+
+
+@pytest.mark.slow
+def test_resume_with_a_larger_target_equals_a_direct_run(tmp_path, quick_data):
+    # The engine's path does not depend on the weight-ESS target, so continuing a run with a larger target
+    # repeats its exact calls one for one (the replay log checks it) and ends where a direct run ends.
+    small, chain = engine_config(tmp_path, quick_data, name="small", ess=300)
+    big, big_chain = engine_config(tmp_path, quick_data, name="big", ess=900)
+    assert main(["--quiet", "run", str(small)]) == 0
+    first = EngineFile(str(chain)).read()
+    assert first.report["converged"] and first.report["ess"] >= 300
+    moved = tmp_path / "small_more.toml"
+    moved.write_text(small.read_text().replace("ess_above = 300", "ess_above = 900"))
+    assert main(["--quiet", "resume", str(chain), "--config", str(moved)]) == 0
+    assert main(["--quiet", "run", str(big)]) == 0
+    got, ref = EngineFile(str(chain)).read(), EngineFile(str(big_chain)).read()
+    assert got.report["ess"] >= 900 and got.calls_done > first.calls_done
+    np.testing.assert_array_equal(got.rows.position[:first.calls_done], first.rows.position)
+    for key in ref.sample:
+        np.testing.assert_array_equal(got.sample[key], ref.sample[key])

@@ -263,6 +263,7 @@ def _fake_dataset(seed=4):
                             to_dl=np.ones(20), spectra=("TT",), experiment="Fictional Array"), model)
 
 
+@pytest.mark.slow
 def test_write_weighted_summary_files_and_the_users_files(tmp_path):
     res, ws = _engine_run()
     info = engine_info(res, ess_target=1000)

@@ -192,3 +192,28 @@ def engine_status_report(info: dict) -> str:
     else:
         out.append("verdict   running, not converged yet: " + "; ".join(todo or ["targets not yet checked"]))
     return "\n".join(out)
+
+
+def engine_record(state, cfg) -> dict:
+    """`engine_status_report`'s record of a surrogate-engine chain file (`infer.store.enginefile`): the
+    stored report of the last session's result when there is one, else what the exact calls tell."""
+    from types import SimpleNamespace
+
+    from infer.analysis.weighted import engine_info
+    from infer.sampling.engine import Round
+    from infer.sampling.exactlog import STAGES
+    rep = state.report
+    if rep is None:
+        stage = np.asarray(state.rows.stage)
+        last = {v: k for k, v in STAGES.items()}.get(int(stage[-1]), "start") if len(stage) else "start"
+        return {"stage": last, "exact_calls": state.calls_done,
+                "calls_by_stage": {k: int(np.sum(stage == c)) for k, c in STAGES.items()},
+                "ess_target": float(cfg.stopping.ess_above), "khat_max": float(cfg.surrogate.khat_max),
+                "converged": False, "missing": ["the run has not produced a weighted sample yet"]}
+    result = SimpleNamespace(
+        rounds=[Round(**r) for r in rep["rounds"]], exact_calls=rep["exact_calls"], theory_calls=rep["theory_calls"],
+        refits=rep["refits"], chain=rep["surrogate_chain"], ess=rep["ess"], khat=rep["khat"], ln_z=rep["ln_z"],
+        ln_z_err=rep["ln_z_err"], converged=rep["converged"], missing=rep["missing"],
+        log_weight=state.sample["log_weight"], laplace=SimpleNamespace(calls=rep.get("fit_calls", 0)),
+        stage="done")
+    return engine_info(result, ess_target=rep["ess_target"], khat_max=rep["khat_max"], exact_rows=state.rows)

@@ -246,3 +246,40 @@ def summarize_run(state, cfg, chain, out=None, burn: int | None = None, no_model
                      f"({s.meta['dof']} dof after {len(s.names)} parameters), PTE = {s.meta['pte_best']:.3f}")
     lines += [f"  {kind:<12} {path}" for kind, path in paths.items()]
     return "\n".join(lines)
+
+
+def summarize_engine_run(state, cfg, chain, out=None, no_model: bool = False) -> str:
+    """Summarise a surrogate-engine chain (`infer.store.enginefile.EngineState`) with its weights; returns
+    the report text. The output folder is checked before the theory is called."""
+    from infer.analysis.weighted import WeightedSample
+    from infer.report.status import engine_record
+    if state.sample is None:
+        raise UserError(f"{chain}: the surrogate engine has not produced a weighted sample yet "
+                        f"({state.calls_done} exact calls so far); resume it with `infer resume {chain}`")
+    outdir, _ = check_outputs(Path(out).resolve() if out else Path(cfg.summary_dir), bandpowers=not no_model,
+                              files=WEIGHTED_FILES)
+    s = state.sample
+    meta = {"run": state.provenance.get("run_name"), "experiment": state.provenance.get("experiment"),
+            "stop_reason": state.stop_reason}
+    ws = WeightedSample(state.names, state.derived_names, s["position"], s["derived"], s["log_post"],
+                        s["log_like"], s["log_weight"], dict(state.tex), dict(state.bounds), meta)
+    info = engine_record(state, cfg)
+    dataset = model = fit = None
+    if not no_model:
+        try:
+            from infer.model.posterior import Posterior
+            post = Posterior(cfg)
+            model, fit = post.fit_quality(ws.position[ws.best_index()])
+            dataset = post.data
+        except UserError as err:
+            log.warning("no data-vs-model figure: %s", err)
+    paths = write_weighted_summary(ws, info, outdir, dataset=dataset, fit=fit, best_model=model,
+                                   targets=cfg.stopping)
+    verdict = ("met every target" if info["converged"] else "NOT converged: " + "; ".join(info["missing"]))
+    lines = [f"summary of {chain} (surrogate engine: {info['exact_calls']} exact calls, weight ESS "
+             f"{info['ess']:.0f}, k̂ {info['khat']:.2f}): {verdict}"]
+    if fit is not None:
+        lines.append(f"best exact draw: χ² = {fit.chi2:.1f} for {fit.n_bins} bands ({fit.dof} dof after "
+                     f"{len(ws.names)} parameters), PTE = {fit.pte:.3f}")
+    lines += [f"  {kind:<12} {path}" for kind, path in paths.items()]
+    return "\n".join(lines)

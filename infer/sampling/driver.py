@@ -39,7 +39,7 @@ from infer.analysis.samples import Samples
 from infer.errors import EXIT_OK, EXIT_PAUSED
 from infer.parallel import Interrupted
 from infer.sampling import stopping
-from infer.sampling.moves import LockStep, make_moves  # noqa: F401  (make_moves: for older imports)
+from infer.sampling.moves import LockStep
 from infer.sampling.progress import Progress
 from infer.sampling.state import BlobLayout, DrawBuffer
 from infer.store.base import ChainBackend, ChainState

@@ -58,6 +58,11 @@ log = logging.getLogger("infer")
 EngineSettings = Surrogate
 
 
+#: Draws one surrogate chain provides, in correction rounds; a new chain (after a refit on every exact
+#: point so far) follows when they are used up.
+POOL_ROUNDS = 8
+
+
 @dataclass
 class Laplace:
     """Mode and curvature covariance of the exact posterior (from the best fit)."""
@@ -204,7 +209,7 @@ class Engine:
             logpost, train_info = self.problem.train(rows.position[ok], self.problem.targets(rows.position[ok], rows.blobs[ok]),
                                                      laplace)
             self.report("chain", refit=refit)
-            need = int(math.ceil(1.6 * self.ess_target / (1 - s.defensive_weight))) + s.round_size
+            need = POOL_ROUNDS * s.round_size        # independent of the ESS target (see `_round_size`)
             pool, chain = self.chain_sampler(logpost, laplace, int(self._rng(2, refit).integers(2**31)), need)
             ln_zs, zs_err = surrogate_evidence(logpost, pool, laplace, s, self._rng(3, refit))
             proposals.append(Proposal(logpost, ln_zs, laplace, s))
@@ -270,16 +275,11 @@ class Engine:
                             False, missing)
 
     def _round_size(self, rounds, refit) -> int:
-        """``round_size``, or fewer once the weight ESS per call of this surrogate's rounds predicts that
-        fewer draws reach the target (a multiple of ``batch``, at least one batch); within the budget."""
+        """``round_size`` (fewer only where the exact-call budget ends). Deliberately independent of the
+        ESS target, like the surrogate chain's length: a run continued with a larger target then repeats
+        the shorter run's exact calls one for one (the replay log checks it) and goes on from there."""
         s = self.s
-        size = s.round_size
-        mine = [r for r in rounds if r.refit == refit]
-        if mine and self._last_ess is not None:
-            rate = max(sum(r.ess for r in mine) / sum(r.n for r in mine), 0.05)
-            need = (self.ess_target - self._last_ess) / rate
-            size = int(min(size, max(s.batch, s.batch * math.ceil(1.03 * need / s.batch))))
-        return int(min(size, max(s.batch, s.max_exact - self.exact.calls)))
+        return int(min(s.round_size, max(s.batch, s.max_exact - self.exact.calls)))
 
     @staticmethod
     def _combined(proposals, draws_x, draws_lp, draws_from):

@@ -17,7 +17,6 @@ chain file's engine layout (`infer.store.enginefile.EngineFile`), both with ``ro
 from __future__ import annotations
 
 import logging
-import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -143,4 +142,4 @@ def finite(rows: Rows) -> np.ndarray:
                                                  np.ones(len(rows), bool))
 
 
-__all__ = ["ExactLog", "MemoryLog", "Rows", "ResumeDiverged", "STAGES", "finite", "math"]
+__all__ = ["ExactLog", "MemoryLog", "Rows", "ResumeDiverged", "STAGES", "finite"]

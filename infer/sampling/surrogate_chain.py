@@ -91,7 +91,7 @@ def sample_surrogate(logpost, laplace, seed: int, draws_needed: int, *, lower, u
         tau = max(d["tau"] for d in per.values())
         thin = max(1, int(math.ceil(tau))) if math.isfinite(tau) else len(kept)
         pool = kept[::thin].reshape(-1, P)
-        met = (rhat < rule.rhat_below and ess >= min(rule.ess_above, draws_needed) and
+        met = (rhat < rule.rhat_below and ess >= draws_needed and
                T > rule.tau_multiple * tau and len(pool) >= draws_needed)
         verdict = {"met": bool(met), "steps": T, "rhat_max": float(rhat), "ess_min": float(ess),
                    "tau_max": float(tau), "surrogate_calls": ev.calls, "pool": len(pool)}
