@@ -43,7 +43,7 @@ read -r -a mpiexec_cmd <<< "${MPIEXEC:-mpiexec -n ${SLURM_NTASKS:-2}}"
 
 # CAMB's OpenMP threads per rank come from [sampling] threads_per_worker in the run file (default 1),
 # never from the number of ranks, so that the chain does not depend on it; keep --cpus-per-task equal to
-# it. 1 thread and one rank per core is the usual choice (tests/bench_parallel.py measures both ways).
+# it. 1 thread and one rank per core is the usual choice (benchmarks/bench_parallel.py measures both ways).
 # This export only keeps NumPy's BLAS in every rank within the task's cores; infer sets CAMB's own count.
 export OMP_NUM_THREADS=${SLURM_CPUS_PER_TASK:-1}
 

@@ -226,7 +226,8 @@ def summarize_run(state, cfg, chain, out=None, burn: int | None = None, no_model
     s.meta.update({"run": state.provenance.get("run_name"), "experiment": state.provenance.get("experiment"),
                    "converged": v.met, "stop_rule": vars(cfg.stopping), "missing": missing,
                    "rejections": state.rejections,
-                   "calls": state.steps_done * s.position.shape[1] * s.position.shape[2]})
+                   "calls": state.steps_done * s.position.shape[1] * s.position.shape[2],
+                   "best_fit": best_fit_line(cfg, chain)})
     dataset = model = fit = None
     if not no_model:
         try:
@@ -260,7 +261,7 @@ def summarize_engine_run(state, cfg, chain, out=None, no_model: bool = False) ->
                               files=WEIGHTED_FILES)
     s = state.sample
     meta = {"run": state.provenance.get("run_name"), "experiment": state.provenance.get("experiment"),
-            "stop_reason": state.stop_reason}
+            "stop_reason": state.stop_reason, "best_fit": best_fit_line(cfg, chain)}
     ws = WeightedSample(state.names, state.derived_names, s["position"], s["derived"], s["log_post"],
                         s["log_like"], s["log_weight"], dict(state.tex), dict(state.bounds), meta)
     info = engine_record(state, cfg)
@@ -283,3 +284,22 @@ def summarize_engine_run(state, cfg, chain, out=None, no_model: bool = False) ->
                      f"{len(ws.names)} parameters), PTE = {fit.pte:.3f}")
     lines += [f"  {kind:<12} {path}" for kind, path in paths.items()]
     return "\n".join(lines)
+
+
+def best_fit_line(cfg, chain) -> str | None:
+    """One line describing the run's `infer fit` result file beside the chain, if there is one (read as
+    JSON data; a file that is not a fit result is ignored with a warning)."""
+    from infer.fit.bestfit import FORMAT as FIT_FORMAT, default_path
+    path = default_path(replace(cfg, chain_path=str(Path(chain).resolve())), "posterior")
+    if not path.is_file():
+        return None
+    try:
+        rec = json.loads(path.read_text(encoding="utf-8"))
+        if rec.get("format") != FIT_FORMAT:
+            raise ValueError("not a fit result")
+        best = ", ".join(f"{k} = {v:.6g}" for k, v in rec["best"].items())
+        return (f"χ² = {rec['chi2']:.1f} for {rec['n_bands']} bands ({rec['dof']} dof, PTE = {rec['pte']:.3f}) "
+                f"at {best} ({rec['calls']} exact calls; {path.name})")
+    except (OSError, ValueError, KeyError, TypeError) as err:
+        log.warning("%s: not read as a best-fit record (%s)", path, err)
+        return None

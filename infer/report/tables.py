@@ -69,6 +69,8 @@ def _meta_lines(meta: dict) -> list[str]:
             continue
         if meta.get(key) not in (None, ""):
             out.append(f"- {label}: {meta[key]}")
+    if meta.get("best_fit"):
+        out.append(f"- Best fit (`infer fit`, an optimised maximum): {meta['best_fit']}")
     if meta.get("chi2_best") is not None:
         line = f"- Fit of the best sample: χ² = {float(meta['chi2_best']):.1f}"
         if meta.get("n_bins") is not None:

@@ -46,7 +46,7 @@ def triangle_figure(samples_after_burn: Samples | WeightedSample, names, best: d
 
     Diagonal: smoothed 1-D marginal with its equal-tailed 68 % interval shaded and the median marked.
     Below: smoothed 2-D marginals with 68 % / 95 % credible regions. ``best`` ({name: value}, e.g. the
-    ``best`` of each `infer.summary.Constraint`) marks the best sample when given.
+    ``best`` of each `infer.analysis.marginals.Constraint`) marks the best sample when given.
     """
     s = samples_after_burn
     names = list(names)
