@@ -69,23 +69,46 @@ class _Stop:
 class _Progress:
     """One log line per interval (and at every stage change): stage, exact calls, weight ESS, k̂."""
 
-    def __init__(self, log_minutes: float, target: float):
+    def __init__(self, log_minutes: float, target: float, store=None):
         self.every, self.target = 60.0 * log_minutes, target
         self.last = time.monotonic()
         self.state = {"stage": "start", "calls": 0}
         self.t0 = time.monotonic()
+        self.first_calls = None
+        self.store = store                  # gets `record()` with each commit, for `infer status`
+
+    def record(self) -> dict:
+        """Stage, exact calls, weight ESS and k̂ so far, and an ETA from the correction rounds' ESS per
+        call and this session's seconds per exact call."""
+        st = dict(self.state)
+        out = {k: _plain(st[k]) for k in ("stage", "calls", "ess", "khat", "chain") if k in st}
+        done = st.get("calls", 0) - (self.first_calls or 0)
+        per_call = (time.monotonic() - self.t0) / done if done > 0 else None
+        if st.get("ess") and st.get("correct_calls") and per_call is not None:
+            rate = st["ess"] / st["correct_calls"]
+            out["eta_seconds"] = max(0.0, (self.target - st["ess"]) / max(rate, 1e-3) * per_call)
+        out["seconds_per_call"] = per_call
+        return out
 
     def stage(self, stage, **kw):
         changed = stage != self.state.get("stage")
         self.state.update(kw, stage=stage)
         if changed and stage != "weights" and not (stage == "correct" and kw.get("round", 0) > 0):
             log.info("surrogate engine: %s", _describe(stage, self.state))
+        if stage == "correct" and "round" in kw:
+            self.state.setdefault("correct_start", kw.get("calls", 0))
         if stage == "weights":
+            self.state["correct_calls"] = kw.get("calls", 0) - self.state.get("correct_start", 0) + 0
+
             log.info("surrogate engine: %d exact calls, weight ESS %.0f of %.0f, k̂ %.2f", kw.get("calls", 0),
                      kw.get("ess", 0), self.target, kw.get("khat", math.nan))
 
     def calls(self, n):
+        if self.first_calls is None:
+            self.first_calls = n - 1
         self.state["calls"] = n
+        if self.store is not None:
+            self.store.progress = self.record()
         if time.monotonic() - self.last >= self.every:
             self.last = time.monotonic()
             log.info("surrogate engine: %s, %d exact calls so far (%.0f s)", self.state["stage"], n,
@@ -126,7 +149,7 @@ def execute(cfg, store, problem, *, early=None, clock=None, start_event=None) ->
     from infer.sampling.exactlog import ExactLog
     limit = cfg.stopping.time_limit
     deadline = (clock if clock is not None else time.monotonic()) + limit - 5.0 if limit else None
-    progress = _Progress(cfg.sampling.log_minutes, cfg.stopping.ess_above)
+    progress = _Progress(cfg.sampling.log_minutes, cfg.stopping.ess_above, store)
     with _Stop(early, deadline) as stop:
         evaluator = None
         try:

@@ -206,10 +206,15 @@ def engine_record(state, cfg) -> dict:
     if rep is None:
         stage = np.asarray(state.rows.stage)
         last = {v: k for k, v in STAGES.items()}.get(int(stage[-1]), "start") if len(stage) else "start"
-        return {"stage": last, "exact_calls": state.calls_done,
-                "calls_by_stage": {k: int(np.sum(stage == c)) for k, c in STAGES.items()},
-                "ess_target": float(cfg.stopping.ess_above), "khat_max": float(cfg.surrogate.khat_max),
-                "converged": False, "missing": ["the run has not produced a weighted sample yet"]}
+        prog = state.progress or {}
+        out = {"stage": prog.get("stage", last), "exact_calls": state.calls_done,
+               "calls_by_stage": {k: int(np.sum(stage == c)) for k, c in STAGES.items()},
+               "ess_target": float(cfg.stopping.ess_above), "khat_max": float(cfg.surrogate.khat_max),
+               "converged": False, "missing": ["the run has not produced a weighted sample yet"]}
+        for key in ("ess", "khat", "eta_seconds", "chain"):
+            if prog.get(key) is not None:
+                out[key] = prog[key]
+        return out
     result = SimpleNamespace(
         rounds=[Round(**r) for r in rep["rounds"]], exact_calls=rep["exact_calls"], theory_calls=rep["theory_calls"],
         refits=rep["refits"], chain=rep["surrogate_chain"], ess=rep["ess"], khat=rep["khat"], ln_z=rep["ln_z"],

@@ -230,7 +230,7 @@ class Engine:
                                     t_draws(rng, n_t, laplace.mean, laplace.chol * s.t_scale, s.t_dof)])
                 x = x[rng.permutation(len(x))]
                 used += n_s
-                self.report("correct", round=len(rounds), calls=self.exact.calls)
+                self.report("correct", round=len(rounds), calls=self.exact.calls, chain=chain)
                 lp, blobs, _ = self.exact.evaluate(x, "correct")
                 start = sum(len(d) for d in draws_x)
                 draws_x.append(x), draws_lp.append(lp), draws_blob.append(blobs), draws_from.append(refit)

@@ -66,6 +66,7 @@ class EngineState:
     sample: dict | None = None                 # SAMPLE arrays, when the run has stopped at least once
     report: dict | None = None
     stop_reason: str = ""
+    progress: dict | None = None               # the writer's last record: stage, calls, ESS, k̂, ETA
 
     @property
     def calls_done(self) -> int:
@@ -137,6 +138,8 @@ class EngineFile(ChainStore):
                 if n:
                     ds[done:] = arr
             put_json(g, "reasons", get_json(g["reasons"]) + list(rows.reasons))
+            if getattr(self, "progress", None):
+                put_json(f["run"], "progress", self.progress)
             if events:
                 put_json(f["run"], "events", get_json(f["run"]["events"]) + list(events))
             f.attrs["calls_done"] = done + n
@@ -200,7 +203,8 @@ class EngineFile(ChainStore):
                                    get_json(f["names/tex"]),
                                    {k: tuple(b) for k, b in zip(names, f["names/bounds"][()].tolist())}, rows,
                                    provenance_from(f["provenance"]), get_json(f["run"]["events"]), sample, report,
-                                   attr_str(f["run"], "stop_reason", "") or "")
+                                   attr_str(f["run"], "stop_reason", "") or "",
+                                   get_json(f["run"]["progress"]) if "progress" in f["run"] else None)
         except ChainFileError:
             raise
         except Exception as err:      # h5py reports damage as OSError, KeyError, ValueError, ...
