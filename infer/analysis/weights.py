@@ -121,7 +121,8 @@ def gpd_fit(x: np.ndarray) -> tuple[float, float]:
     theta = 1.0 / x[-1] + (1.0 - np.sqrt(m / (j - 0.5))) / (3.0 * x[int(n / 4 + 0.5) - 1])
     k = np.mean(np.log1p(-theta[:, None] * x[None, :]), axis=1)           # = −k(θ) in the sign above
     profile = n * (np.log(-theta / k) - k - 1.0)
-    weight = 1.0 / np.sum(np.exp(profile[None, :] - profile[:, None]), axis=1)
+    with np.errstate(over="ignore"):                                      # exp → inf gives weight 0, as meant
+        weight = 1.0 / np.sum(np.exp(profile[None, :] - profile[:, None]), axis=1)
     keep = weight >= 10 * np.finfo(float).eps                              # drop negligible grid points
     weight, theta = weight[keep], theta[keep]
     theta_hat = np.sum(theta * weight / weight.sum())
