@@ -1,15 +1,24 @@
 """Shared fixtures: a small dataset for the exactly solvable template model, and run files around it."""
 from __future__ import annotations
 
-import textwrap
-from pathlib import Path
+import os
 
-import numpy as np
-import pytest
+# The test process runs the driver in-process (`main([...])`), so it gets the driver's BLAS default that
+# `infer.cli` sets for the command: one BLAS thread unless exported. It must be set before NumPy loads,
+# i.e. here (pytest itself loads no NumPy before this file). Without it a threaded BLAS on a loaded
+# 2-core machine turned a 0.3 s Gaussian-process test into 38 s (measured, OpenBLAS 0.3.31).
+for _var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
 
-from infer import data as dataset
-from infer.forecast import mock
-from infer.theory.templates import NAMES, TemplateTheory
+import textwrap  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+import pytest  # noqa: E402
+
+from infer import data as dataset  # noqa: E402
+from infer.forecast import mock  # noqa: E402
+from infer.theory.templates import NAMES, TemplateTheory  # noqa: E402
 
 TRUTH = {"a_1": 1.0, "a_2": 1.0, "a_3": 1.0, "a_4": 1.0}
 
