@@ -2,7 +2,7 @@
 against plain importance sampling and the plain ensemble sampler, on the CAMB demo and on a non-Gaussian
 8-parameter case; its accuracy against an independent exact estimate; wall time with 1 and 2 workers.
 
-    python benchmarks/bench_engine.py [--workdir DIR] [--budget-minutes 35] [--is-draws 800]
+    python benchmarks/bench_engine.py [--workdir DIR] [--budget-minutes 35] [--is-draws 800] [--stages ABCDE]
 
 Stages, in priority order (later ones are skipped when the wall-time budget would be exceeded):
 
@@ -13,7 +13,9 @@ A. The demo (configs/kestrel_demo.toml, ``[sampling] engine = "surrogate"``) run
    surrogate's error on that round's exact points before they were trained on (held-out |Δ ln p|; Δχ² =
    2|Δ ln p|).
 B. ``infer resume CHAIN --config`` (run file with ``ess_above = 1000``) on a copy of A's chain: the run
-   file change is allowed by `infer.config.diff`; whether the engine then reuses A's calls is measured.
+   file change is allowed by `infer.config.diff`, and the engine's path does not depend on the target, so
+   the resumed run replays A's exact calls (checked by the replay log) and goes on to ESS 1000; its counts
+   include every call of A.
 C. Independent exact estimate: self-normalised importance sampling (Owen 2013, ch. 9) from a multivariate
    Student-t, ν = 4, scale 1.5 × the Laplace covariance of the best fit (`infer.fit.bestfit.fit`, the
    function behind ``infer fit``; taken from A's report, whose fit is the same deterministic call, and its
@@ -26,6 +28,7 @@ D. The non-Gaussian case (configs/kestrel_demo_wide.toml: τ free under uniform 
    point-source amplitude under uniform [0, 200] μK², whose posterior piles up at 0) to ESS 400, the
    exact-call budget capped so that the stage ends in the wall-time budget.
 E. (if the budget allows) the demo to ESS 1000 in a fresh run.
+T. (only when asked for in --stages) the 1-vs-2-worker timing alone, on fresh draws.
 
 The plain ensemble sampler is NOT rerun (a converged CAMB chain takes hours): its figure, 30 calls per
 effective sample with the default moves (99 with the stretch move), is the measurement of
@@ -219,6 +222,31 @@ def plain_is(run_file: Path, laplace_mean, laplace_cov, n_draws, timing_calls, s
     return out
 
 
+def timing_only(run_file: Path, laplace_mean, laplace_cov, n, seed) -> dict:
+    """Wall time of the same n exact calls (Student-t draws around the Laplace mean) with 1 and 2 workers."""
+    from infer import config
+    from infer.fit.bands import BandModelFactory
+    from infer.parallel import make_evaluator
+    from infer.sampling.engine import t_draws
+    cfg = config.load(str(run_file))
+    factory = BandModelFactory(cfg)
+    X = t_draws(np.random.default_rng([seed, 0x71E]), n + 2, np.asarray(laplace_mean),
+                np.linalg.cholesky(np.asarray(laplace_cov)) * 1.5, 4.0)
+    out, vals = {}, {}
+    for workers in (1, 2):
+        ev = make_evaluator(factory, workers, 1)
+        try:
+            ev.evaluate(X[:2])                                    # start-up and first call
+            t = time.monotonic()
+            vals[workers] = ev.evaluate(X[2:])[0]
+            out[workers] = time.monotonic() - t
+        finally:
+            ev.close()
+        say(f"[T] {n} fixed exact calls with {workers} worker(s): {out[workers]:.1f} s (load {os.getloadavg()[0]:.2f})")
+    out["same"] = bool(np.array_equal(vals[1], vals[2]))
+    return out
+
+
 # -- main -------------------------------------------------------------------------------------------------
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -229,6 +257,10 @@ def main(argv=None):
     ap.add_argument("--is-draws", type=int, default=800)
     ap.add_argument("--timing-calls", type=int, default=64)
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--stages", default="ABCDE", help="letters of the stages to run (see the docstring; T: the "
+                    "1-vs-2-worker timing alone)")
+    ap.add_argument("--s-per-call", type=float, default=1.15, help="wall seconds per exact call assumed for the "
+                    "budget when stage A is not run")
     args = ap.parse_args(argv)
     budget = 60 * args.budget_minutes
     wd = Path(args.workdir)
@@ -239,38 +271,55 @@ def main(argv=None):
         f"{os.getloadavg()[0]:.2f}, budget {args.budget_minutes:.0f} min, workdir {wd}, log {log}")
     say("the machine is shared: wall times include other users' load")
 
-    # A. the demo to ESS 400
-    f400 = derived_run_file(demo, wd / "demo-400.toml", 400)
-    A = engine_run("A demo ESS 400", f400, wd / "demo-400.h5", log)
-    describe_run(A)
-    if not A.get("report"):
-        say("the demo run gave no result; stopping")
-        return 1
-    rep = A["report"]
-    s_per_call = A["wall"] / max(1, A["calls_done"])
-    say(f"    {s_per_call:.2f} s of wall time per exact call (2 workers) in this run")
-
-    # B. resume to ESS 1000 over A's calls
-    f1000 = derived_run_file(demo, wd / "demo-1000.toml", 1000)
-    copy = wd / "demo-resume.h5"
-    shutil.copyfile(wd / "demo-400.h5", copy)
     from infer import config
-    refused, allowed = config.diff(config.load(str(f400)), config.load(str(f1000)))
-    say(f"\n[B] config.diff(ESS 400 file, ESS 1000 file): refused {refused}, allowed {allowed}")
-    say(f"[B] $ python -m infer resume {copy} --config {f1000}   (timeout 300 s)")
     from infer.store.enginefile import EngineFile
-    before = EngineFile(str(copy)).read().calls_done
-    rc, wall = infer_cmd(["resume", copy, "--config", f1000], log, timeout=300)
-    after = EngineFile(str(copy)).read()
-    B = {"rc": rc, "wall": wall, "before": before, "after": after.calls_done, "report": after.report,
-         "error": " | ".join(last_lines(log, 1, "infer: "))}
-    say(f"[B] exit {rc} after {wall:.0f} s; exact calls in the file {before} → {after.calls_done}; last log line: "
-        f"{B['error']}")
+    stages = set(args.stages.upper())
+    # A. the demo to ESS 400 (without A in --stages: the chain file of an earlier A in the workdir)
+    f400 = derived_run_file(demo, wd / "demo-400.toml", 400)
+    f1000 = derived_run_file(demo, wd / "demo-1000.toml", 1000)
+    if "A" in stages:
+        A = engine_run("A demo ESS 400", f400, wd / "demo-400.h5", log)
+        describe_run(A)
+    elif (wd / "demo-400.h5").exists():
+        st = EngineFile(str(wd / "demo-400.h5")).read()
+        A = {"label": "A (earlier run)", "rc": 0, "wall": st.report["seconds"] if st.report else math.nan,
+             "names": list(st.names), "report": st.report, "sample": st.sample, "calls_done": st.calls_done}
+        say(f"\n[A] the earlier ESS-400 demo run in {wd / 'demo-400.h5'} (not rerun)")
+    else:
+        A = {}
+    rep = A.get("report")
+    s_per_call = A["wall"] / max(1, A["calls_done"]) if rep and math.isfinite(A["wall"]) else args.s_per_call
+    say(f"    {s_per_call:.2f} s of wall time per exact call (2 workers) assumed for the budget")
+    if rep is None and stages & set("BCE"):
+        say("no demo result (stage A); stages B, C, E need it")
+        stages -= set("BCE")
+
+    # B. resume to ESS 1000 over A's calls (on a copy of A's chain file)
+    B = None
+    if "B" in stages:
+        copy = wd / "demo-resume.h5"
+        shutil.copyfile(wd / "demo-400.h5", copy)
+        refused, allowed = config.diff(config.load(str(f400)), config.load(str(f1000)))
+        say(f"\n[B] config.diff(ESS 400 file, ESS 1000 file): refused {refused}, allowed {allowed}")
+        left = max(60.0, budget - elapsed())
+        say(f"[B] $ python -m infer resume {copy} --config {f1000}   (timeout {left:.0f} s)")
+        before = EngineFile(str(copy)).read().calls_done
+        rc, wall = infer_cmd(["resume", copy, "--config", f1000], log, timeout=left)
+        after = EngineFile(str(copy)).read()
+        B = {"rc": rc, "wall": wall, "before": before, "after": after.calls_done, "report": after.report,
+             "sample": after.sample, "names": list(after.names),
+             "error": " | ".join(last_lines(log, 1, "infer: "))}
+        say(f"[B] exit {rc} after {wall:.0f} s; exact calls in the file {before} → {after.calls_done}; last log "
+            f"line: {B['error']}")
+        if rc == 0:
+            describe_run(B)
 
     # C. plain importance sampling (independent exact estimate) and the 1-vs-2-worker timing
     est = (args.is_draws + 2 * args.timing_calls + 4) * s_per_call
     C = None
-    if elapsed() + est < budget:
+    if "C" not in stages:
+        pass
+    elif elapsed() + est < budget:
         say(f"\n[C] plain importance sampling: {args.is_draws} draws of t_4(Laplace mean, (1.5)² Laplace cov), "
             f"about {est / 60:.0f} min")
         C = plain_is(f400, rep["laplace_mean"], rep["laplace_cov"], args.is_draws, args.timing_calls, args.seed,
@@ -286,7 +335,9 @@ def main(argv=None):
     D = None
     left = budget - elapsed()
     cap = int(max(0, left - 60) / max(s_per_call, 0.3))
-    if cap >= 300:
+    if "D" not in stages:
+        pass
+    elif cap >= 300:
         cap = min(cap, 1500)
         fw = derived_run_file(wide, wd / "wide-400.toml", 400, max_exact=cap, time_limit=left)
         say(f"\n[D] non-Gaussian 8-parameter case, exact-call budget {cap} (what the wall-time budget allows)")
@@ -298,20 +349,27 @@ def main(argv=None):
     # E. the demo to ESS 1000 in a fresh run, if it fits
     E = None
     est = 1250 * s_per_call
-    if elapsed() + est < budget:
+    if "E" not in stages:
+        pass
+    elif elapsed() + est < budget:
         E = engine_run("E demo ESS 1000", f1000, wd / "demo-1000.h5", log, timeout=budget - elapsed() + 300)
         describe_run(E)
     else:
         say(f"\n[E] fresh demo run to ESS 1000 skipped: about {est / 60:.0f} min, {max(0, budget - elapsed()) / 60:.0f} "
             "min left in the budget")
 
+    # T. (alone) the 1-vs-2-worker timing of a fixed set of exact calls at demo draws
+    T = None
+    if "T" in stages and rep is not None:
+        T = timing_only(f400, rep["laplace_mean"], rep["laplace_cov"], args.timing_calls, args.seed)
+
     # -- the comparison and the table ----------------------------------------------------------------
-    names = A["names"]
+    names = A.get("names", [])
     if C is not None:
         say("\naccuracy on the demo: engine (A; weighted exact sample) against plain importance sampling (C)")
         say(f"  {'parameter':<15} {'engine mean':>13} {'IS mean':>13} {'shift/σ':>8} {'±MC':>6} | {'engine sd':>11} "
             f"{'IS sd':>11} {'sd ratio':>8} {'±MC':>6}")
-        for lab, R in (("A", A), ("E", E)):
+        for lab, R in (("A", A), ("B", B), ("E", E)):
             if R is None or not R.get("report"):
                 continue
             s = R["sample"]
@@ -341,7 +399,8 @@ def main(argv=None):
         r = R["report"]
         return f"{r['calls_per_effective_sample']:.2f}" + ("" if r["converged"] else " (n.c.)")
     is_col = f"{C['calls'] / C['ess']:.2f}" if C is not None else "—"
-    say(f"  {'demo, 6 sampled':<40} {PLAIN_SAMPLER['de-snooker']:>11.0f} (*) {is_col:>21} {cpe(A):>15} {cpe(E):>16}")
+    say(f"  {'demo, 6 sampled':<40} {PLAIN_SAMPLER['de-snooker']:>11.0f} (*) {is_col:>21} {cpe(A):>15} "
+        f"{cpe(B if B and B.get('rc') == 0 else E):>16}")
     say(f"  {'non-Gaussian, 8 sampled':<40} {'—':>14} {'— (issue: ESS 2/437)':>21} {cpe(D):>15} {'—':>16}")
     say(f"  (*) not rerun: bench_sampling.py on the Fisher-Gaussian stand-in, default moves "
         f"(stretch move: {PLAIN_SAMPLER['stretch']:.0f})")
@@ -351,11 +410,15 @@ def main(argv=None):
         t1, t2 = C["timing"][1], C["timing"][2]
         say(f"\nwall time for {args.timing_calls} fixed exact calls: 1 worker {t1:.1f} s, 2 workers {t2:.1f} s, "
             f"ratio {t1 / t2:.2f} (2 cores shared with other users)")
-    say(f"\nresume to ESS 1000 over the ESS-400 chain: exit {B['rc']}, calls {B['before']} → {B['after']}: "
-        f"{B['error']}")
+    if T is not None:
+        say(f"\nwall time for {args.timing_calls} fixed exact calls (stage T): 1 worker {T[1]:.1f} s, 2 workers "
+            f"{T[2]:.1f} s, ratio {T[1] / T[2]:.2f}; values identical: {T['same']}")
+    if B is not None:
+        say(f"\nresume to ESS 1000 over the ESS-400 chain: exit {B['rc']}, calls {B['before']} → {B['after']}: "
+            f"{B['error']}")
     say(f"\nbenchmark wall time {elapsed() / 60:.1f} min")
     with open(wd / "figures.json", "w") as f:
-        json.dump({"A": A.get("report"), "B": {k: v for k, v in B.items() if k != "report"},
+        json.dump({"A": A.get("report"), "B": B.get("report") if B else None, "T": T,
                    "D": D.get("report") if D else None, "E": E.get("report") if E else None,
                    "C": {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in (C or {}).items()
                          if k not in ("X", "lp", "lw") and not k.startswith("lp_fixed")}},
