@@ -167,3 +167,23 @@ def test_resume_with_a_larger_target_equals_a_direct_run(tmp_path, quick_data):
     np.testing.assert_array_equal(got.rows.position[:first.calls_done], first.rows.position)
     for key in ref.sample:
         np.testing.assert_array_equal(got.sample[key], ref.sample[key])
+
+
+@pytest.mark.slow
+def test_a_run_stopped_by_its_budget_resumes_with_a_larger_one_to_the_direct_result(tmp_path, quick_data, capsys):
+    # The budget cuts the last round short; a resume with a larger budget must repeat those calls and end
+    # where a direct run with the larger budget ends (the round's draws do not depend on the budget).
+    short, chain = engine_config(tmp_path, quick_data, name="short", ess=600, surrogate="max_exact = 400\n")
+    full, full_chain = engine_config(tmp_path, quick_data, name="full", ess=600)
+    assert main(["--quiet", "run", str(short)]) == 0
+    cut = EngineFile(str(chain)).read()
+    assert not cut.report["converged"] and any("budget" in m for m in cut.report["missing"])
+    assert cut.calls_done <= 400
+    more = tmp_path / "short_more.toml"
+    more.write_text(short.read_text().replace("max_exact = 400\n", ""))
+    assert main(["--quiet", "resume", str(chain), "--config", str(more)]) == 0
+    assert main(["--quiet", "run", str(full)]) == 0
+    got, ref = EngineFile(str(chain)).read(), EngineFile(str(full_chain)).read()
+    assert got.report["converged"]
+    for key in ref.sample:
+        np.testing.assert_array_equal(got.sample[key], ref.sample[key])

@@ -209,7 +209,8 @@ class Engine:
             logpost, train_info = self.problem.train(rows.position[ok], self.problem.targets(rows.position[ok], rows.blobs[ok]),
                                                      laplace)
             self.report("chain", refit=refit)
-            need = POOL_ROUNDS * s.round_size        # independent of the ESS target (see `_round_size`)
+            need = POOL_ROUNDS * s.round_size        # independent of the ESS target: a run continued with a
+            #                                          larger target repeats the shorter run's calls one for one
             pool, chain = self.chain_sampler(logpost, laplace, int(self._rng(2, refit).integers(2**31)), need)
             ln_zs, zs_err = surrogate_evidence(logpost, pool, laplace, s, self._rng(3, refit))
             proposals.append(Proposal(logpost, ln_zs, laplace, s))
@@ -221,7 +222,7 @@ class Engine:
                     missing.append(f"exact-call budget {s.max_exact} reached")
                     break
                 rng = self._rng(5, refit, len(rounds))
-                size = self._round_size(rounds, refit)
+                size = s.round_size
                 n_t = int(rng.binomial(size, s.defensive_weight))
                 n_s = size - n_t
                 if used + n_s > len(pool):
@@ -230,6 +231,13 @@ class Engine:
                                     t_draws(rng, n_t, laplace.mean, laplace.chol * s.t_scale, s.t_dof)])
                 x = x[rng.permutation(len(x))]
                 used += n_s
+                # The budget may cut a round short: the draws are made at the full size and only a prefix
+                # is evaluated (a prefix of a shuffled mixture sample is one too), so a resume with a
+                # larger budget replays that prefix and carries on with the same round.
+                room = (s.max_exact - self.exact.calls) // s.batch * s.batch
+                if room < len(x):
+                    x = x[:room]
+                    missing.append(f"exact-call budget {s.max_exact} reached")
                 self.report("correct", round=len(rounds), calls=self.exact.calls, chain=chain)
                 lp, blobs, _ = self.exact.evaluate(x, "correct")
                 start = sum(len(d) for d in draws_x)
@@ -237,7 +245,8 @@ class Engine:
                 own = np.where(np.isfinite(lp), lp - proposals[-1].logpdf(x), -np.inf)
                 k_own = wts.psis_khat(own)
                 ess_own = wts.kish_ess(own)
-                resid = lp - logpost(x)
+                both = np.isfinite(lp)
+                resid = lp[both] - logpost(x[both])
                 resid = resid[np.isfinite(resid)]
                 rounds.append(Round(refit, len(x), start, k_own, ess_own,
                                     float(np.sqrt(np.mean(resid ** 2))) if len(resid) else math.nan,
@@ -250,6 +259,8 @@ class Engine:
                     missing = []
                     return self._result(laplace, proposals, draws_x, draws_lp, draws_blob, draws_from,
                                         rounds, refit, chain, True, [])
+                if missing:
+                    break
                 if k_own > s.khat_max or ess_own / len(x) < s.min_ess_per_call:
                     refine = True
                     break
@@ -273,13 +284,6 @@ class Engine:
             missing.append("surrogate chain not converged")
         return self._result(laplace, proposals, draws_x, draws_lp, draws_blob, draws_from, rounds, refit, chain,
                             False, missing)
-
-    def _round_size(self, rounds, refit) -> int:
-        """``round_size`` (fewer only where the exact-call budget ends). Deliberately independent of the
-        ESS target, like the surrogate chain's length: a run continued with a larger target then repeats
-        the shorter run's exact calls one for one (the replay log checks it) and goes on from there."""
-        s = self.s
-        return int(min(s.round_size, max(s.batch, s.max_exact - self.exact.calls)))
 
     @staticmethod
     def _combined(proposals, draws_x, draws_lp, draws_from):

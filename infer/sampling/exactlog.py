@@ -21,11 +21,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from infer.errors import UserError
+
 log = logging.getLogger("infer")
 
 
-class ResumeDiverged(RuntimeError):
-    """A replayed batch asked for other points than the stored ones (the run is not deterministic)."""
+class ResumeDiverged(UserError):
+    """A replayed batch asked for other points than the stored ones (one line, exit 2)."""
 
 
 @dataclass
@@ -108,15 +110,17 @@ class ExactLog:
             if i0 + len(chunk) <= len(self._stored):
                 got = self._stored.slice(i0, i0 + len(chunk))
                 if not np.array_equal(got.position, chunk):
-                    raise ResumeDiverged(f"exact calls {i0}–{i0 + len(chunk) - 1} were stored for other points "
-                                         "than this session asks for: the run is not reproducible here "
-                                         "(a changed library version or thread count?)")
+                    raise ResumeDiverged(f"exact calls {i0}–{i0 + len(chunk) - 1} in the chain file were made at "
+                                         "other points than this session asks for: something that steers the "
+                                         "engine differs from the run that wrote them (numpy/scipy/emcee "
+                                         "version, BLAS thread count, or a changed setting); start a new chain")
                 l, bl, rs = got.log_post, got.blobs, got.reasons
                 self.replayed += len(chunk)
             else:
                 if i0 < len(self._stored):       # a partly stored batch: cannot happen with aligned batches
-                    raise ResumeDiverged(f"the log holds {len(self._stored)} exact calls, not a whole batch "
-                                         f"boundary of this session (call {i0})")
+                    raise ResumeDiverged(f"the chain file holds {len(self._stored)} exact calls, which is not a "
+                                         f"batch boundary of this session (call {i0}); was [surrogate] batch "
+                                         "changed? start a new chain")
                 l, bl, rs = self.evaluator.evaluate(chunk)
                 l, bl = np.asarray(l, float), np.asarray(bl, float)
                 rows = Rows(chunk.copy(), l, bl, np.full(len(chunk), STAGES[stage], dtype=np.int64), list(rs))
