@@ -21,11 +21,8 @@ import sys
 import time
 from pathlib import Path
 
-# The driver process does light linear algebra (the surrogate's fit, convergence checks) next to worker
-# processes that own the cores; one BLAS thread there avoids oversubscription (a Gaussian-process fit took
-# 437 ms threaded against 7.7 ms single-threaded on a loaded 2-core machine) and keeps the surrogate
-# engine's results independent of the core count, so a resume on other hardware replays exactly. Set
-# before NumPy loads; a value the user exported wins.
+# One BLAS thread in the driver process (set before NumPy loads; a user's value wins): no oversubscription
+# beside the workers, and surrogate-engine results independent of the core count (DEVELOPERS.md).
 for _var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
@@ -107,25 +104,9 @@ def cmd_resume(args) -> int:
     return _maybe_summarize(args, chain, code)
 
 
-def _stored_config(state):
-    from infer.run import stored_config
-    return stored_config(state)
-
-
 def cmd_status(args) -> int:
-    from infer.report.status import status_report
-    from infer.store.chainfile import ChainStore
-    from infer.store.enginefile import EngineFile, engine_of
-    from infer.store.lock import is_locked, read_holder
-    if engine_of(args.chain) == "surrogate":
-        from infer.report.status import engine_record, engine_status_report
-        state = EngineFile(args.chain).read()
-        print(f"chain     {os.path.abspath(args.chain)}")
-        print(engine_status_report(engine_record(state, _stored_config(state))))
-        return EXIT_OK
-    state = ChainStore(args.chain).read()
-    holder = read_holder(args.chain) if is_locked(args.chain) else {}
-    print(status_report(state, _stored_config(state), args.chain, params=args.params, holder=holder))
+    from infer.report.status import status_of_file
+    print(status_of_file(args.chain, params=args.params))
     return EXIT_OK
 
 
@@ -134,18 +115,8 @@ def cmd_summarize(args) -> int:
 
 
 def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
-    from infer.report.summary import summarize_run
-    from infer.store.chainfile import ChainStore
-    from infer.store.enginefile import EngineFile, engine_of
-    if engine_of(str(chain)) == "surrogate":
-        from infer.report.summary import summarize_engine_run
-        if burn is not None:
-            raise UserError("--burn applies to ensemble chains; a surrogate-engine sample has no burn-in")
-        state = EngineFile(str(chain)).read()
-        print(summarize_engine_run(state, _stored_config(state), str(chain), out, no_model))
-        return EXIT_OK
-    state = ChainStore(str(chain)).read()
-    print(summarize_run(state, _stored_config(state), str(chain), out, burn, no_model))
+    from infer.report.summary import summarize_file
+    print(summarize_file(str(chain), out, burn, no_model))
     return EXIT_OK
 
 

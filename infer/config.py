@@ -347,6 +347,12 @@ def load(path) -> Config:
     return parse(text, str(p))
 
 
+def stored(state) -> Config:
+    """The run file stored in a chain's provenance (``state.provenance``), parsed again."""
+    prov = state.provenance
+    return parse(prov["config_text"], prov["config_path"])
+
+
 def _flatten(table, prefix=""):
     out = {}
     for key, val in table.items():
@@ -388,6 +394,6 @@ def diff(old: Config, new: Config) -> tuple[list[str], list[str]]:
 
 
 #: Names other modules import from here (the parameter tables' types are re-exported from `infer.parameters`).
-__all__ = ["Config", "Sampling", "Stopping", "Surrogate", "Prior", "Parameter", "parse", "load", "diff", "support",
+__all__ = ["Config", "stored", "Sampling", "Stopping", "Surrogate", "Prior", "Parameter", "parse", "load", "diff", "support",
            "parse_duration", "log_normalisation", "truncnormal_log_mass", "MIN_PRIOR_MASS", "PARAM_KEYS", "LIMITS",
            "ENGINES", "MOVES", "MAX_SEED", "MAX_SECONDS"]

@@ -82,10 +82,9 @@ def set_aside(chain: Path, replace_existing: bool) -> None:
 
 
 def stored_config(state):
-    """The run file stored in a chain's provenance, parsed again."""
+    """The run file stored in a chain's provenance, parsed again (`infer.config.stored`)."""
     from infer import config
-    prov = state.provenance
-    return config.parse(prov["config_text"], prov["config_path"])
+    return config.stored(state)
 
 
 def report_outcome(outcome, chain_path, tau_multiple: float = 50.0):

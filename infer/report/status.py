@@ -222,3 +222,20 @@ def engine_record(state, cfg) -> dict:
         log_weight=state.sample["log_weight"], laplace=SimpleNamespace(calls=rep.get("fit_calls", 0)),
         stage="done")
     return engine_info(result, ess_target=rep["ess_target"], khat_max=rep["khat_max"], exact_rows=state.rows)
+
+
+def status_of_file(path, params: bool = False) -> str:
+    """``infer status``: the text for the chain file at ``path``, of either engine (read-only, safe while
+    another process writes it)."""
+    import os
+
+    from infer.config import stored as stored_config
+    from infer.store.chainfile import ChainStore
+    from infer.store.enginefile import EngineFile, engine_of
+    from infer.store.lock import is_locked, read_holder
+    if engine_of(path) == "surrogate":
+        state = EngineFile(path).read()
+        return f"chain     {os.path.abspath(path)}\n" + engine_status_report(engine_record(state, stored_config(state)))
+    state = ChainStore(path).read()
+    holder = read_holder(path) if is_locked(path) else {}
+    return status_report(state, stored_config(state), path, params=params, holder=holder)

@@ -303,3 +303,17 @@ def best_fit_line(cfg, chain) -> str | None:
     except (OSError, ValueError, KeyError, TypeError) as err:
         log.warning("%s: not read as a best-fit record (%s)", path, err)
         return None
+
+
+def summarize_file(chain: str, out=None, burn: int | None = None, no_model: bool = False) -> str:
+    """``infer summarize``: the summary of the chain file ``chain``, of either engine; returns the text."""
+    from infer.config import stored as stored_config
+    from infer.store.chainfile import ChainStore
+    from infer.store.enginefile import EngineFile, engine_of
+    if engine_of(chain) == "surrogate":
+        if burn is not None:
+            raise UserError("--burn applies to ensemble chains; a surrogate-engine sample has no burn-in")
+        state = EngineFile(chain).read()
+        return summarize_engine_run(state, stored_config(state), chain, out, no_model)
+    state = ChainStore(chain).read()
+    return summarize_run(state, stored_config(state), chain, out, burn, no_model)
