@@ -17,6 +17,7 @@ import logging
 import os
 import signal
 import time
+from contextlib import contextmanager
 from dataclasses import replace
 from pathlib import Path
 
@@ -143,6 +144,22 @@ def resumed_config(state, chain: Path, config_path, override, extra_changes):
     return cfg, list(changes) + list(extra_changes)
 
 
+@contextmanager
+def resuming(chain: Path, store_class, config_path, override, extra_changes, summary_check=None):
+    """Hold the chain's lock and start-up signals, read the chain, settle the configuration a resume
+    continues with and cap this process's threads; yields (early signals, store, state, cfg, changes)."""
+    from infer.store.lock import ChainLock
+    with EarlySignals() as early, ChainLock(str(chain)):
+        store = store_class(str(chain))
+        store.remove_strays()
+        state = store.read()
+        cfg, changes = resumed_config(state, chain, config_path, override, extra_changes)
+        if summary_check is not None:
+            summary_check(cfg)
+        cap_threads(cfg)
+        yield early, store, state, cfg, changes
+
+
 def check_dataset(state, data, cfg, chain) -> None:
     if data.sha256 != state.provenance.get("dataset_sha256"):
         raise UserError(f"refusing to resume {chain}: the dataset {cfg.dataset['file']} has changed since the "
@@ -203,15 +220,8 @@ def resume(chain: Path, config_path, override, extra_changes, clock, summary_che
     from infer.parallel import Interrupted
     from infer.sampling.driver import event
     from infer.store.chainfile import ChainStore
-    from infer.store.lock import ChainLock
-    with EarlySignals() as early, ChainLock(str(chain)):
-        store = ChainStore(str(chain))
-        store.remove_strays()
-        state = store.read()
-        cfg, changes = resumed_config(state, chain, config_path, override, extra_changes)
-        if summary_check is not None:
-            summary_check(cfg)
-        cap_threads(cfg)
+    with resuming(chain, ChainStore, config_path, override, extra_changes, summary_check) as (
+            early, store, state, cfg, changes):
         posterior = Posterior(cfg)
         check_dataset(state, posterior.data, cfg, chain)
         if state.steps_done >= cfg.sampling.steps:

@@ -261,21 +261,14 @@ def start(cfg, chain, replace_existing: bool, clock) -> int:
 def resume(chain, config_path, override, extra_changes, clock, summary_check=None) -> int:
     """``infer resume`` of an engine chain: the engine re-runs over the stored exact calls (replayed) and
     computes the rest; a converged run with no change is left alone."""
-    from infer.run import EarlySignals, cap_threads, check_dataset, resumed_config
+    from infer.run import check_dataset, resuming
     from infer.sampling.driver import event
     from infer.store.enginefile import EngineFile
-    from infer.store.lock import ChainLock
     if any(c.startswith("--steps") for c in extra_changes):
         raise UserError("--steps applies to ensemble runs; a surrogate-engine run is bounded by "
                         "[surrogate] max_exact (give a run file with a larger one via --config)")
-    with EarlySignals() as early, ChainLock(str(chain)):
-        store = EngineFile(str(chain))
-        store.remove_strays()
-        state = store.read()
-        cfg, changes = resumed_config(state, chain, config_path, override, extra_changes)
-        if summary_check is not None:
-            summary_check(cfg)
-        cap_threads(cfg)
+    with resuming(chain, EngineFile, config_path, override, extra_changes, summary_check) as (
+            early, store, state, cfg, changes):
         problem = problem_for(cfg)
         check_dataset(state, problem.model.posterior.data, cfg, chain)
         if state.report is not None and state.report.get("converged") and not changes:
