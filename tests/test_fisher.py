@@ -10,13 +10,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy import differentiate, stats
+from scipy import differentiate
 
 from infer import config
 from infer.forecast import fisher_matrix, numerical_fisher
 from infer.model.posterior import Posterior
 
-from conftest import analytic_posterior, quick_config_text
+from conftest import analytic_posterior, quick_config_text, gaussian_loglike_hessian
 
 
 def test_linear_template_model_fisher_inverse_is_the_exact_posterior_covariance(tmp_path, quick_data):
@@ -116,17 +116,7 @@ def test_numerical_fisher_equals_minus_hessian_of_the_gaussian_log_likelihood():
     design = rng.normal(size=(n, p))
     data = rng.normal(size=n)
     theta0 = np.array([0.3, -1.0, 2.0])
-
-    def loglike(theta):
-        return stats.multivariate_normal.logpdf(data, mean=design @ theta, cov=cov)
-
-    h = 0.5
-    hess = np.empty((p, p))
-    for i in range(p):
-        for j in range(p):
-            ei, ej = np.eye(p)[i] * h, np.eye(p)[j] * h
-            hess[i, j] = (loglike(theta0 + ei + ej) - loglike(theta0 + ei - ej)
-                          - loglike(theta0 - ei + ej) + loglike(theta0 - ei - ej)) / (4 * h * h)
+    hess = gaussian_loglike_hessian(data, design, cov, theta0)
     result = numerical_fisher(lambda t: design @ t, theta0, np.full(p, 0.1), cov)
     np.testing.assert_allclose(result.matrix, -hess, rtol=1e-7, atol=1e-10)
 

@@ -17,6 +17,8 @@ from infer import forecast as mock
 from infer.errors import UserError
 from infer.theory.base import Spectra
 
+from conftest import gaussian_loglike_hessian
+
 REPO = Path(__file__).resolve().parents[1]
 KESTREL = REPO / "configs" / "kestrel.toml"
 
@@ -332,17 +334,7 @@ def test_fisher_matrix_equals_hessian_of_gaussian_log_likelihood():
     design = rng.normal(size=(n, p))
     data = rng.normal(size=n)
     theta0 = np.array([0.3, -1.0, 2.0])
-
-    def loglike(theta):
-        return stats.multivariate_normal.logpdf(data, mean=design @ theta, cov=cov)
-
-    h = 0.5
-    hess = np.empty((p, p))
-    for i in range(p):
-        for j in range(p):
-            ei, ej = np.eye(p)[i] * h, np.eye(p)[j] * h
-            hess[i, j] = (loglike(theta0 + ei + ej) - loglike(theta0 + ei - ej)
-                          - loglike(theta0 - ei + ej) + loglike(theta0 - ei - ej)) / (4 * h * h)
+    hess = gaussian_loglike_hessian(data, design, cov, theta0)
     fisher = mock.fisher_matrix({f"q{i}": design[:, i] for i in range(p)}, cov)
     np.testing.assert_allclose(fisher, -hess, rtol=1e-7, atol=1e-10)
 
