@@ -33,6 +33,7 @@ from infer.analysis.burnin import default_targets
 from infer.analysis.marginals import best_index, constraints
 from infer.analysis.samples import Samples
 from infer.analysis.weighted import KHAT_MAX, WeightedSample, weighted_constraints
+from infer import paths
 from infer.atomic import write_atomic, write_text_atomic
 from infer.errors import UserError
 from infer.report.status import honest_missing
@@ -92,12 +93,7 @@ def check_outputs(outdir, bandpowers: bool = True, files=CHAIN_FILES) -> tuple[P
     outdir = Path(outdir).expanduser().resolve()
     if os.path.lexists(outdir) and not outdir.is_dir():
         raise UserError(f"{outdir}: output path exists and is not a directory")
-    try:
-        outdir.mkdir(parents=True, exist_ok=True)
-    except OSError as err:
-        raise UserError(f"{outdir}: cannot create output directory ({err.strerror})") from None
-    if not os.access(outdir, os.W_OK | os.X_OK):
-        raise UserError(f"{outdir}: the output directory is not writable")
+    paths.file_folder(outdir / FILES["markdown"])       # creates the folder and checks it is writable
     manifest = _load_manifest(outdir)
     for key in files:
         if key != "bandpowers" or bandpowers:
