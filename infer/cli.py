@@ -14,6 +14,7 @@ quietly with 141 (128 + SIGPIPE, what a shell reports for a program stopped by a
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import logging
 import os
@@ -35,6 +36,9 @@ log = logging.getLogger("infer")
 
 #: The commands that use the evaluating MPI ranks; every other command runs on rank 0 alone.
 MPI_COMMANDS = ("run", "resume", "fit")
+#: Commands defined in their own modules: ``infer.commands.NAME`` has ``register(sub)``, which adds its
+#: sub-parser (with ``set_defaults(func=...)``), and ``MPI = True`` if it uses the evaluating ranks.
+COMMAND_MODULES: tuple[str, ...] = ()
 
 
 # -- helpers ---------------------------------------------------------------------------------------------
@@ -305,7 +309,15 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--workers", type=_integer(0, "worker processes"),
                    help="worker processes for the exact calls (default: [sampling] workers)")
     f.set_defaults(func=cmd_fit)
+    for name in COMMAND_MODULES:
+        importlib.import_module(f"infer.commands.{name}").register(sub)
     return p
+
+
+def _uses_ranks(command: str) -> bool:
+    """Whether ``command`` uses the evaluating MPI ranks."""
+    return command in MPI_COMMANDS or (command in COMMAND_MODULES and
+                                       getattr(importlib.import_module(f"infer.commands.{command}"), "MPI", False))
 
 
 def _setup_logging(debug: bool, quiet: bool):
@@ -348,9 +360,9 @@ def main(argv=None) -> int:
     parallel = mpi.world_size() > 1
     if parallel and not mpi.is_root():
         # evaluates for rank 0 in run/resume; every other command runs on rank 0 only
-        return mpi.serve() if args.command in MPI_COMMANDS else EXIT_OK
+        return mpi.serve() if _uses_ranks(args.command) else EXIT_OK
     try:
-        if parallel and args.command in MPI_COMMANDS:
+        if parallel and _uses_ranks(args.command):
             mpi.start()
         for name in ("chain", "damaged"):
             if isinstance(getattr(args, name, None), str):
@@ -374,7 +386,7 @@ def main(argv=None) -> int:
               "and please report it)", file=sys.stderr)
         return EXIT_INTERNAL
     finally:
-        if parallel and args.command in MPI_COMMANDS:
+        if parallel and _uses_ranks(args.command):
             mpi.shutdown()
 
 

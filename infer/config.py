@@ -19,7 +19,7 @@ try:
     import tomllib
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from infer import validate
@@ -29,7 +29,12 @@ from infer.theory.base import KINDS
 from infer.parameters import (MIN_PRIOR_MASS, PARAM_KEYS, Parameter, Prior, _parameter,  # noqa: F401
                               log_normalisation, support, truncnormal_log_mass)
 
-SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "surrogate", "output"}
+#: Sections read by their own modules: name → "module:function", called as
+#: ``function(path, table, base, theory, parameters)`` with ``table`` the section ({} if absent), ``base`` the
+#: run file's folder (for relative paths), ``theory`` the checked [theory] table and ``parameters`` the
+#: parsed [parameters.NAME] tables; it returns the validated value kept in ``Config.sections[name]``.
+SECTION_READERS: dict[str, str] = {}
+SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "surrogate", "output"} | set(SECTION_READERS)
 RUN_KEYS = {"name", "seed"}
 DATASET_KEYS = {"file", "covariance", "units", "spectra", "ell_min", "ell_max"}
 SAMPLING_KEYS = {"engine", "walkers", "ensembles", "steps", "moves", "workers", "threads_per_worker",
@@ -47,7 +52,7 @@ MOVES = ("de-snooker", "stretch", "de")
 
 #: Keys whose change alters the posterior or the algorithm; refused on resume (see `posterior_diff`).
 FROZEN_PREFIXES = ("dataset.", "theory.", "parameters.", "sampling.walkers", "sampling.ensembles",
-                   "sampling.moves", "sampling.engine", "surrogate.")
+                   "sampling.moves", "sampling.engine", "surrogate.") + tuple(f"{s}." for s in SECTION_READERS)
 #: [surrogate] keys a resume may change (they bound the run, never change a value computed so far).
 RUN_CONTROL_SURROGATE_KEYS = ("surrogate.max_exact",)
 #: Theory keys that change speed only, never a prediction (the template model's simulated cost).
@@ -154,6 +159,7 @@ class Config:
     chain_path: str
     summary_dir: str
     surrogate: Surrogate = Surrogate()
+    sections: dict = field(default_factory=dict)   # validated values of the SECTION_READERS sections
 
     @property
     def sampled(self) -> tuple[Parameter, ...]:
@@ -293,6 +299,8 @@ def parse(text: str, path: str) -> Config:
     stopping = _dataclass_from(path, "stopping", st, Stopping, {**rules, "time_limit": lambda p, k, v: v})
 
     surrogate = _surrogate(path, raw.get("surrogate", {}), sampling, n_sampled)
+    sections = {name: _reader(spec)(path, raw.get(name, {}), base, dict(theory), parameters)
+                for name, spec in SECTION_READERS.items()}
 
     out = raw.get("output", {})
     validate.check_keys(path, "output", out, OUTPUT_KEYS)
@@ -310,7 +318,14 @@ def parse(text: str, path: str) -> Config:
         if dataset.get(key) == summary_dir:
             raise UserError(f"{path}: 'output.summary' is the dataset's {key} {summary_dir}")
     return Config(str(Path(path).resolve()), text, raw, name, seed, dataset, dict(theory), parameters,
-                  sampling, stopping, chain_path, summary_dir, surrogate)
+                  sampling, stopping, chain_path, summary_dir, surrogate, sections)
+
+
+def _reader(spec: str):
+    """The function named ``"module:function"`` in `SECTION_READERS`."""
+    import importlib
+    module, name = spec.split(":")
+    return getattr(importlib.import_module(module), name)
 
 
 def _surrogate(path, table, sampling: Sampling, n_sampled: int) -> Surrogate:

@@ -9,7 +9,10 @@ posterior turns it into log-posterior −∞ and counts the reason. Nothing here
 Every backend declares, on its class (so callers never guess):
 
 * ``required`` — parameters always read; ``one_of`` — a group of which exactly one is read (e.g. H₀ or
-  θ_*), empty if none; ``inputs`` = ``required + one_of`` (set by the base class);
+  θ_*), empty if none; ``optional`` — parameters read when the run gives them (sampled or fixed) and
+  otherwise at the backend's own default (an extension of the base model such as Σm_ν or w₀); ``inputs`` =
+  ``required + one_of + optional`` (set by the base class); `compute` receives the optional ones only when
+  given;
 * ``derived_names`` — derived values it returns (fixed order) and ``derived_tex`` their LaTeX labels;
 * ``SETTINGS`` — its ``[theory]`` keys, each a `Setting` with a type, a range and a default, checked by
   `Theory.check_settings` when the run file is read (no backend library is imported for that), so a
@@ -96,6 +99,7 @@ class Theory:
     code: str = ""
     required: tuple[str, ...] = ()
     one_of: tuple[str, ...] = ()
+    optional: tuple[str, ...] = ()
     inputs: tuple[str, ...] = ()
     derived_names: tuple[str, ...] = ()
     derived_tex: dict[str, str] = {}
@@ -104,7 +108,7 @@ class Theory:
 
     def __init_subclass__(cls, **kw):
         super().__init_subclass__(**kw)
-        cls.inputs = tuple(cls.required) + tuple(cls.one_of)
+        cls.inputs = tuple(cls.required) + tuple(cls.one_of) + tuple(cls.optional)
         missing = [n for n in cls.derived_names if n not in cls.derived_tex]
         if missing:
             raise TypeError(f"{cls.__name__} lacks LaTeX labels (derived_tex) for {missing}")
