@@ -19,6 +19,17 @@ and estimates at different ℓ are independent. Since D_ℓ is C_ℓ times a fac
 fixed ℓ, the same formula holds with D_ℓ throughout, which is what is coded. Band b averages D̂_ℓ with
 top-hat weights w_bℓ = 1/n over its n multipoles, so Cov(b, b') = Σ_ℓ w_bℓ w_b'ℓ Cov_ℓ.
 
+Several frequency channels (`cross_covariance`): with fields F = (X, i) for kind X ∈ {T, E} and channel
+i, every band power is a cross-spectrum Ĉ^{XY}_{ij} of the maps of channels i and j, and the same Gaussian
+(Wick) argument gives, per ℓ (the multi-spectrum Gaussian covariance of Tegmark, Taylor & Heavens 1997,
+ApJ 480, 22, and of cross-spectrum analyses generally — common practice, cited from memory),
+
+    Cov(Ĉ^{XY}_{ij}, Ĉ^{ZW}_{kl}) = [M^{XZ}_{ik} M^{YW}_{jl} + M^{XW}_{il} M^{YZ}_{jk}] / ((2ℓ+1) f_sky),
+    M^{XY}_{ij} = S^{XY}_{ij} + δ_ij N^{XY}_i,
+
+with S the sky (CMB plus foregrounds, after the instrument) and N the noise of channel i (auto spectra
+only: the noise of different channels is independent). One channel gives back the formula above.
+
 Assumptions: isotropic white noise, a Gaussian beam known exactly, no T–B or E–B correlation (parity),
 and the f_sky-scaled full-sky mode count (mode coupling of a cut sky is neglected).
 """
@@ -128,4 +139,31 @@ def knox_covariance(exp, spectra: Spectra) -> KnoxBands:
                      ell_eff=np.tile(0.5 * (lo + hi), len(kinds)), covariance=cov)
 
 
-__all__ = ["noise_dl", "KnoxBands", "knox_covariance", "theory_dl", "needed_kinds", "FIELDS"]
+def cross_covariance(m_ell: np.ndarray, first, second, ell: np.ndarray, fsky: float,
+                     bin_width: int) -> np.ndarray:
+    """Gaussian band-power covariance of cross-spectra between fields (several channels).
+
+    ``m_ell`` is (L, F, F): the signal-plus-noise matrix M_ℓ of the F fields (symmetric per ℓ) at the
+    contiguous multipoles ``ell`` (L = n_bins · bin_width); spectrum s correlates fields ``first[s]``
+    and ``second[s]``. Bands are ordered spectrum-major (all bins of spectrum 0, then spectrum 1, …),
+    top-hat bins of ``bin_width`` multipoles. Returns the (S·n_bins, S·n_bins) covariance (see the module
+    docstring for the formula); different bins are independent."""
+    m_ell = np.asarray(m_ell, dtype=float)
+    a = np.asarray(first, dtype=np.int64)
+    b = np.asarray(second, dtype=np.int64)
+    ell = np.asarray(ell, dtype=float)
+    n_ell = ell.size
+    if m_ell.shape[0] != n_ell or n_ell % bin_width:
+        raise ValueError("m_ell must have one matrix per multipole of whole bins")
+    nb, ns = n_ell // bin_width, a.size
+    modes = (2.0 * ell + 1.0) * fsky
+    per_ell = (m_ell[:, a[:, None], a[None, :]] * m_ell[:, b[:, None], b[None, :]]
+               + m_ell[:, a[:, None], b[None, :]] * m_ell[:, b[:, None], a[None, :]]) / modes[:, None, None]
+    binned = per_ell.reshape(nb, bin_width, ns, ns).sum(axis=1) / bin_width**2     # (nb, S, S)
+    cov = np.zeros((ns, nb, ns, nb))
+    idx = np.arange(nb)
+    cov[:, idx, :, idx] = binned
+    return cov.reshape(ns * nb, ns * nb)
+
+
+__all__ = ["noise_dl", "KnoxBands", "knox_covariance", "cross_covariance", "theory_dl", "needed_kinds", "FIELDS"]
