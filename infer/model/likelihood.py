@@ -17,25 +17,13 @@ goodness-of-fit reading otherwise (common practice).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 
 import numpy as np
 from scipy import linalg
 
+from infer.model.fitquality import FitQuality, fit_quality, pte as _pte  # noqa: F401 - FitQuality re-exported
 from infer.model.nuisance import NUISANCE, NuisanceModel  # noqa: F401 - NUISANCE is re-exported
 from infer.theory.base import Spectra
-
-
-@dataclass(frozen=True)
-class FitQuality:
-    """χ² of a model against the data: total, per spectrum kind (each block with its own covariance
-    block), the degrees of freedom after ``n_params`` fitted parameters, and the PTE."""
-
-    chi2: float
-    n_bins: int
-    dof: int
-    pte: float
-    by_kind: dict          # kind → (χ² of its block, number of bands)
 
 
 class BandPowerLikelihood:
@@ -78,22 +66,13 @@ class BandPowerLikelihood:
     @staticmethod
     def pte(chi2: float, dof: int) -> float:
         """Probability to exceed χ² for ``dof`` degrees of freedom (scipy.stats.chi2 survival function)."""
-        from scipy import stats
-        return float(stats.chi2.sf(chi2, dof)) if dof > 0 else float("nan")
+        return _pte(chi2, dof)
 
     def fit_quality(self, model: np.ndarray, n_params: int) -> FitQuality:
-        """χ², its PTE for N − ``n_params`` dof, and the χ² of each spectrum kind's block."""
+        """χ², its PTE for N − ``n_params`` dof, and the χ² of each spectrum kind's and each (kind, pair)
+        block (`infer.model.fitquality`)."""
         model = np.asarray(model, float)
-        c2 = self.chi2(model)
-        cov = np.asarray(self.data.covariance, float)
-        by_kind = {}
-        for k, rows in self._rows.items():
-            r = self.data.value[rows] - model[rows]
-            block = linalg.cholesky(cov[np.ix_(rows, rows)], lower=True)
-            z = linalg.solve_triangular(block, r, lower=True)
-            by_kind[k] = (float(z @ z), int(len(rows)))
-        dof = self.n - int(n_params)
-        return FitQuality(c2, self.n, dof, self.pte(c2, dof), by_kind)
+        return fit_quality(self.data, model, self.chi2(model), n_params)
 
     def whiten(self, model: np.ndarray) -> np.ndarray:
         """Whitened residuals r = L⁻¹ (d − m) with C = L Lᵀ, so that χ² = rᵀr (for least-squares optimisers)."""

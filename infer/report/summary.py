@@ -232,6 +232,7 @@ def summarize_run(state, cfg, chain, out=None, burn: int | None = None, no_model
             model, fit = post.fit_quality(s.position[best_index(s, choice.burn)])
             dataset = post.data
             s.meta.update({"chi2_best": fit.chi2, "n_bins": fit.n_bins, "dof": fit.dof, "pte_best": fit.pte})
+            s.meta.update(fit_meta(post, fit, kept_positions(s, choice.burn)))
         except UserError as err:
             log.warning("no data-vs-model figure: %s", err)
     paths = write_summary(s, outdir, choice, dataset=dataset, best_model=model, targets=cfg.stopping,
@@ -268,6 +269,7 @@ def summarize_engine_run(state, cfg, chain, out=None, no_model: bool = False) ->
             post = Posterior(cfg)
             model, fit = post.fit_quality(ws.position[ws.best_index()])
             dataset = post.data
+            ws.meta.update(fit_meta(post, fit, ws.position, np.exp(ws.log_weight - np.max(ws.log_weight))))
         except UserError as err:
             log.warning("no data-vs-model figure: %s", err)
     paths = write_weighted_summary(ws, info, outdir, dataset=dataset, fit=fit, best_model=model,
@@ -280,6 +282,37 @@ def summarize_engine_run(state, cfg, chain, out=None, no_model: bool = False) ->
                      f"{len(ws.names)} parameters), PTE = {fit.pte:.3f}")
     lines += [f"  {kind:<12} {path}" for kind, path in paths.items()]
     return "\n".join(lines)
+
+
+#: Posterior-predictive draws made by the summary when the theory is the (free) template model; a
+#: Boltzmann theory costs one call per draw, so the summary skips the check there (call
+#: `infer.analysis.ppc` with `Posterior.model_bands` to run it).
+PPC_DRAWS = 200
+
+
+def kept_positions(s, burn: int) -> np.ndarray:
+    """The kept draws of a chain, (draws, parameters)."""
+    pos = s.position[burn:]
+    return pos.reshape(-1, pos.shape[-1])
+
+
+def fit_meta(post, fit, positions, weights=None, draws: int | None = None) -> dict:
+    """Summary lines of the fit per (kind, pair) block and, for a cheap theory, the posterior-predictive
+    p-value (`infer.analysis.ppc`) from ``draws`` posterior draws (default `PPC_DRAWS` for the template
+    theory, none otherwise)."""
+    from infer.analysis.ppc import predictive_check, select_draws
+    from infer.model.fitquality import pte
+    meta = {"fit_blocks": [f"{lab} {c2:.1f}/{n} (PTE {pte(c2, n):.3f})" for lab, (c2, n) in
+                           (getattr(fit, "by_pair", None) or fit.by_kind).items()]}
+    if draws is None:
+        draws = PPC_DRAWS if post.cfg.theory.get("code") == "templates" else 0
+    if draws > 0:
+        idx = select_draws(len(positions), draws, weights, rng=0)
+        models = np.array([post.model_bands(positions[i]) for i in idx])
+        res = predictive_check(post.data.value, post.data.covariance, models, rng=1)
+        meta["ppc"] = (f"p = {res.p_value:.3f} ± {res.error:.3f} (P(χ²_rep ≥ χ²_obs), {res.draws} posterior "
+                       "draws, one replicate each)")
+    return meta
 
 
 def best_fit_line(cfg, chain) -> str | None:

@@ -81,6 +81,11 @@ def _meta_lines(meta: dict) -> list[str]:
         out.append(line + ".")
     elif meta.get("n_bins") is not None:
         out.append(f"- Band powers: {meta['n_bins']}")
+    if meta.get("fit_blocks"):
+        out.append("- χ² per spectrum and pair (own covariance block; PTE for the block's band count, "
+                   "indicative: blocks share the parameters): " + "; ".join(meta["fit_blocks"]) + ".")
+    if meta.get("ppc"):
+        out.append(f"- Posterior-predictive check (Gelman, Meng & Stern 1996): {meta['ppc']}.")
     if meta.get("converged") is not None:
         missing = meta.get("missing") or []
         out.append("- Stopping rule of the run: " + ("met." if meta["converged"] else
