@@ -25,7 +25,8 @@ of the band powers). No dataset may name a multipole above `MAX_ELL`.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+import re
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -70,6 +71,26 @@ def check_reach(window, window_ell, kind, theory_ell_max: int, label: str) -> No
                         f"is asked for ℓ ≤ {theory_ell_max}")
 
 
+#: A channel name: 1–32 letters, digits, '.', '_', '-', '+', never a lowercase 'x' (the pair separator).
+CHANNEL_NAME = re.compile(r"[A-Za-wyz0-9_.+-]{1,32}")
+
+
+def pair_label(c1: str, c2: str) -> str:
+    """"90x150" for channels "90" and "150"; "" for the single unnamed channel of a version-1 file."""
+    return "" if c1 == "" and c2 == "" else f"{c1}x{c2}"
+
+
+@dataclass(frozen=True, eq=False)
+class Channel:
+    """One frequency channel: centre frequency (GHz; None only for the unnamed "" channel) and an optional
+    bandpass (relative transmission as given, any normalisation; ascending ν > 0, weights ≥ 0, ∫ > 0)."""
+
+    name: str
+    nu_ghz: float | None = None
+    bandpass_nu_ghz: np.ndarray | None = None
+    bandpass_weight: np.ndarray | None = None
+
+
 @dataclass(frozen=True, eq=False, repr=False)
 class BandPowers:
     """Band powers in the working units (see the module docstring); arrays are read-only."""
@@ -87,6 +108,22 @@ class BandPowers:
     to_dl: np.ndarray           # (N,) factor turning value into D_ℓ μK² at ell_eff (plots only)
     units: str                  # units as declared: one of UNITS
     sha256: str                 # hex digest of the file bytes (plus the covariance file, plain route)
+    channel_1: np.ndarray = None   # (N,) str, channel of the first map (T of TE); "" for version 1
+    channel_2: np.ndarray = None   # (N,) str, channel of the second map (E of TE)
+    channels: tuple = None         # tuple of Channel, file order
+    beam_modes: np.ndarray = None  # (K, N) fractional model change per unit beam-mode amplitude
+    noise: np.ndarray = None       # (N,) like value; NaN where absent
+    fiducial: np.ndarray = None    # (N,) like value; NaN where absent
+
+    def __post_init__(self):
+        n = int(np.shape(self.kind)[0])
+        defaults = {"channel_1": frozen(np.full(n, "", dtype="<U32")),
+                    "channel_2": frozen(np.full(n, "", dtype="<U32")),
+                    "channels": (Channel(""),), "beam_modes": frozen(np.zeros((0, n))),
+                    "noise": frozen(np.full(n, np.nan)), "fiducial": frozen(np.full(n, np.nan))}
+        for name, default in defaults.items():
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, default)
 
     def __len__(self) -> int:
         return int(self.kind.shape[0])
@@ -102,6 +139,17 @@ class BandPowers:
         return tuple(dict.fromkeys(str(k) for k in self.kind))
 
     @property
+    def pair(self) -> np.ndarray:
+        """(N,) pair labels, "90x150" ("" for a single-channel version-1 file)."""
+        return np.array([pair_label(a, b) for a, b in zip(self.channel_1.tolist(), self.channel_2.tolist())],
+                        dtype="<U65")
+
+    @property
+    def pairs(self) -> tuple[str, ...]:
+        """Pair labels present, in file order."""
+        return tuple(dict.fromkeys(self.pair.tolist()))
+
+    @property
     def ell_max_needed(self) -> int:
         """Largest ℓ with non-zero window weight in any band."""
         cols = np.flatnonzero((self.window != 0).any(axis=0))
@@ -112,9 +160,11 @@ class BandPowers:
         check_reach(self.window, self.window_ell, self.kind, int(theory_ell_max),
                     f"{self.source}: windows")
 
-    def cut(self, spectra=None, ell_min=None, ell_max=None) -> "BandPowers":
-        """Keep the bands of ``spectra`` lying wholly inside [ell_min, ell_max], with their
-        sub-covariance. The window grid is trimmed to the support of the kept bands."""
+    def cut(self, spectra=None, pairs=None, ell_min=None, ell_max=None, ell_ranges=None) -> "BandPowers":
+        """Keep whole bands of ``spectra`` and ``pairs`` lying inside their ℓ range, with their
+        sub-covariance, beam-mode columns, noise and fiducial. A band's range is the most specific of
+        ``ell_ranges["KIND PAIR"]``, ``ell_ranges["KIND"]``, then [ell_min, ell_max]. The window grid is
+        trimmed to the support of the kept bands."""
         keep = np.ones(len(self), dtype=bool)
         what = []
         if spectra is not None:
@@ -131,25 +181,57 @@ class BandPowers:
                                 f"(it has {', '.join(self.spectra)})")
             keep &= np.isin(self.kind, spectra)
             what.append("spectra " + "/".join(spectra))
+        pair = self.pair
+        if pairs is not None:
+            if isinstance(pairs, str):
+                pairs = (pairs,)
+            pairs = tuple(pairs)
+            absent = [p for p in pairs if p not in self.pairs]
+            if absent:
+                raise UserError(f"{self.source}: dataset.pairs: {absent[0]!r} is not a frequency pair of "
+                                f"the dataset (it has {', '.join(self.pairs) or 'one unnamed channel'})")
+            keep &= np.isin(pair, pairs)
+            what.append("pairs " + "/".join(pairs))
+        lo = np.full(len(self), 0 if ell_min is None else int(ell_min))
+        hi = np.full(len(self), MAX_ELL if ell_max is None else int(ell_max))
         if ell_min is not None:
-            keep &= self.ell_lo >= int(ell_min)
             what.append(f"ℓ ≥ {int(ell_min)}")
         if ell_max is not None:
-            keep &= self.ell_hi <= int(ell_max)
             what.append(f"ℓ ≤ {int(ell_max)}")
+        ranges = dict(ell_ranges or {})
+        for key in sorted(ranges, key=lambda k: len(str(k).split())):   # kinds first, then kind+pair
+            parts = str(key).split()
+            sel = self.kind == parts[0]
+            if parts[0] not in self.spectra:
+                raise UserError(f"{self.source}: dataset.ell_ranges: {key!r}: the dataset has no "
+                                f"{parts[0]} bands (it has {', '.join(self.spectra)})")
+            if len(parts) == 2:
+                if parts[1] not in self.pairs:
+                    raise UserError(f"{self.source}: dataset.ell_ranges: {key!r}: {parts[1]!r} is not a "
+                                    f"frequency pair of the dataset (it has {', '.join(self.pairs)})")
+                sel &= pair == parts[1]
+            a, b = ranges[key]
+            lo[sel], hi[sel] = int(a), int(b)
+            what.append(f"{key} ℓ {int(a)}–{int(b)}")
+        keep &= (self.ell_lo >= lo) & (self.ell_hi <= hi)
         if not keep.any():
             raise UserError(f"{self.source}: no band is left after the cut ({', '.join(what)})")
         idx = np.flatnonzero(keep)
         window = self.window[idx]
         cols = np.flatnonzero((window != 0).any(axis=0))
         span = slice(int(cols[0]), int(cols[-1]) + 1)
+        used = set(self.channel_1[idx].tolist()) | set(self.channel_2[idx].tolist())
         return BandPowers(
             source=self.source, experiment=self.experiment,
             kind=frozen(self.kind[idx]), ell_lo=frozen(self.ell_lo[idx]),
             ell_hi=frozen(self.ell_hi[idx]), ell_eff=frozen(self.ell_eff[idx]),
             value=frozen(self.value[idx]), covariance=frozen(self.covariance[np.ix_(idx, idx)]),
             window_ell=frozen(self.window_ell[span]), window=frozen(window[:, span]),
-            to_dl=frozen(self.to_dl[idx]), units=self.units, sha256=self.sha256)
+            to_dl=frozen(self.to_dl[idx]), units=self.units, sha256=self.sha256,
+            channel_1=frozen(self.channel_1[idx]), channel_2=frozen(self.channel_2[idx]),
+            channels=tuple(c for c in self.channels if c.name in used),
+            beam_modes=frozen(self.beam_modes[:, idx]), noise=frozen(self.noise[idx]),
+            fiducial=frozen(self.fiducial[idx]))
 
 
-__all__ = ["BandPowers", "UNITS", "MAX_ELL", "check_reach", "frozen"]
+__all__ = ["BandPowers", "Channel", "pair_label", "CHANNEL_NAME", "UNITS", "MAX_ELL", "check_reach", "frozen"]
