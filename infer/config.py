@@ -23,7 +23,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from infer import validate
-from infer.data.bandpowers import MAX_ELL, UNITS
 from infer.errors import UserError
 from infer.theory.base import KINDS
 from infer.parameters import (MIN_PRIOR_MASS, PARAM_KEYS, Parameter, Prior, _parameter,  # noqa: F401
@@ -36,7 +35,6 @@ from infer.parameters import (MIN_PRIOR_MASS, PARAM_KEYS, Parameter, Prior, _par
 SECTION_READERS: dict[str, str] = {}
 SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "surrogate", "output"} | set(SECTION_READERS)
 RUN_KEYS = {"name", "seed"}
-DATASET_KEYS = {"file", "covariance", "units", "spectra", "ell_min", "ell_max"}
 SAMPLING_KEYS = {"engine", "walkers", "ensembles", "steps", "moves", "workers", "threads_per_worker",
                  "checkpoint_steps", "checkpoint_minutes", "log_minutes"}
 SURROGATE_KEYS = {"design_points", "design_radius", "round_size", "defensive_weight", "t_dof", "t_scale",
@@ -207,34 +205,8 @@ def _dataclass_from(path, section, table, cls, rules):
 
 
 def _dataset(path, ds, base) -> dict:
-    validate.check_keys(path, "dataset", ds, DATASET_KEYS)
-    if "file" not in ds:
-        raise UserError(f"{path}: missing key 'dataset.file'")
-    dataset = dict(ds)
-    dataset["file"] = _resolve(base, ds["file"], path, "dataset.file")
-    plain = Path(dataset["file"]).suffix.lower() in (".txt", ".dat", ".csv")
-    if "covariance" in ds:
-        if not plain:
-            raise UserError(f"{path}: 'dataset.covariance' is only read for a plain-text dataset "
-                            f"(.txt/.dat/.csv); {Path(dataset['file']).name} holds its own covariance")
-        dataset["covariance"] = _resolve(base, ds["covariance"], path, "dataset.covariance")
-    elif plain:
-        raise UserError(f"{path}: 'dataset.covariance' is missing: a plain-text dataset needs a "
-                        "covariance file (.npy or text)")
-    if "units" in ds:
-        validate.choice(path, "dataset.units", ds["units"], tuple(UNITS))
-    elif plain:
-        raise UserError(f"{path}: 'dataset.units' is missing: a plain-text dataset must declare its "
-                        f"units (one of {', '.join(UNITS)})")
-    if "spectra" in ds:
-        dataset["spectra"] = list(validate.subset(path, "dataset.spectra", ds["spectra"], KINDS))
-    for key in ("ell_min", "ell_max"):
-        if key in ds:
-            validate.number(path, f"dataset.{key}", ds[key], integer=True, low=2, high=MAX_ELL)
-    if "ell_min" in ds and "ell_max" in ds and ds["ell_min"] > ds["ell_max"]:
-        raise UserError(f"{path}: 'dataset.ell_min' = {ds['ell_min']} is above 'dataset.ell_max' = "
-                        f"{ds['ell_max']}: no band can be kept")
-    return dataset
+    from infer.data import selection
+    return selection.read(path, ds, base, _resolve)
 
 
 def parse(text: str, path: str) -> Config:

@@ -97,7 +97,7 @@ def test_hdf5_dl_reads_as_specified_and_round_trips(tmp_path):
     back = dataset.load(out)
     assert_same(bp, back)
     with h5py.File(out, "r") as h5:
-        assert h5.attrs["format"] == "infer-bandpowers" and h5.attrs["format_version"] == 1
+        assert h5.attrs["format"] == "infer-bandpowers" and h5.attrs["format_version"] == 2
         assert h5.attrs["description"] == "copy"
         assert sorted(h5) == ["bands", "covariance", "windows"]
 
@@ -332,7 +332,7 @@ HDF5_CASES = [
     ("missing-units", _attr("units", None), "'units'", "missing"),
     ("wrong-format", _attr("format", "someone-elses"), "'format'", "expected 'infer-bandpowers'"),
     ("missing-format", _attr("format", None), "'format'", "missing"),
-    ("newer-version", _attr("format_version", 2), "'format_version'", "newer"),
+    ("newer-version", _attr("format_version", 3), "'format_version'", "newer"),
 ]
 
 

@@ -371,6 +371,15 @@ def assemble(raw: dict, *, units, experiment: str, source: str, sha256: str | No
         hasher.update(",".join(kind.tolist()).encode())
         for arr in (ell_lo, ell_hi, ell_eff, value, cov, window_ell, window):
             hasher.update(np.ascontiguousarray(arr).tobytes())
+        if any(c.name for c in chans) or beam_modes.shape[0] or np.isfinite(noise).any() or np.isfinite(fiducial).any():
+            hasher.update(repr([(c.name, c.nu_ghz) for c in chans]).encode())   # multi-frequency fields
+            hasher.update(",".join(f"{a}|{b}" for a, b in zip(c1, c2)).encode())
+            for c in chans:
+                if c.bandpass_nu_ghz is not None:
+                    hasher.update(np.ascontiguousarray(c.bandpass_nu_ghz).tobytes())
+                    hasher.update(np.ascontiguousarray(c.bandpass_weight).tobytes())
+            for arr in (beam_modes, noise, fiducial):
+                hasher.update(np.ascontiguousarray(arr).tobytes())
         sha256 = hasher.hexdigest()
 
     # The one unit conversion of the code: to μK², windows acting on D_ℓ.

@@ -1,4 +1,4 @@
-"""Our HDF5 band-power file: reader and writer (``format = "infer-bandpowers"``, version 1).
+"""Our HDF5 band-power file: reader and writer (``format = "infer-bandpowers"``, version 2; reads 1 and 2).
 
 HDF5 through h5py (the design card's file format); the file is read whole into memory and opened
 read-only from there, so the SHA-256 recorded in a chain is the digest of exactly the bytes checked.
@@ -7,7 +7,7 @@ Files are data: no pickles, no code. N bands, L window multipoles:
 | name                    | type  | shape  | content                                                        |
 |-------------------------|-------|--------|----------------------------------------------------------------|
 | attr `format`           | str   | —      | `"infer-bandpowers"`                                           |
-| attr `format_version`   | int   | —      | `1`                                                            |
+| attr `format_version`   | int   | —      | `2` (version 1: the same file without the optional fields)     |
 | attr `experiment`       | str   | —      | free-text name of the experiment                               |
 | attr `units`            | str   | —      | `Dl_uK2`, `Dl_K2`, `Cl_uK2` or `Cl_K2`                         |
 | attr `description`      | str   | —      | free text (optional)                                           |
@@ -19,6 +19,16 @@ Files are data: no pickles, no code. N bands, L window multipoles:
 | `windows/ell`           | int   | (L,)   | contiguous ascending multipole grid of the weights             |
 | `windows/weight`        | float | (N, L) | W_bℓ acting on the declared spectrum; each row sums to 1       |
 | `covariance`            | float | (N, N) | covariance of `bands/value` (declared units squared)           |
+| `bands/channel_1`, `bands/channel_2` | str | (N,) | optional: channels of the band's two maps (TE: T from 1, E from 2) |
+| `channels/name`         | str   | (C,)   | optional (with the above): every channel named by a band       |
+| `channels/nu_ghz`       | float | (C,)   | its centre frequency in GHz                                    |
+| `channels/bandpass/NAME/nu_ghz`, `…/weight` | float | (M,) | optional bandpass of channel NAME (ascending ν, weights ≥ 0) |
+| `nuisance/beam_modes`   | float | (K, N) | optional: fractional change of each band per unit beam-mode amplitude |
+| `bands/noise`           | float | (N,)   | optional: noise band power (declared units; NaN: not given)    |
+| `bands/fiducial`        | float | (N,)   | optional: fiducial band power (declared units; NaN: not given) |
+
+A version-1 file (or a version-2 file without the optional fields) is one unnamed channel, no beam
+modes, no noise or fiducial: exactly what version 1 meant.
 
 Within a kind, bands are in increasing ℓ order and do not overlap. Window weights may extend beyond
 [ell_lo, ell_hi] and may be negative, but must vanish at ℓ < 2. The checks and the unit conversion are
@@ -36,12 +46,12 @@ import numpy as np
 
 from infer import validate
 from infer.atomic import write_atomic
-from infer.data.bandpowers import UNITS, BandPowers
+from infer.data.bandpowers import UNITS, BandPowers, Channel
 from infer.data.checks import assemble, dl_factor, read_bytes
 from infer.errors import UserError
 
 FORMAT = "infer-bandpowers"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 SUFFIXES = (".h5", ".hdf5")
 
 # Names of the fields inside the file (also used in messages).
@@ -55,6 +65,15 @@ FIELDS = {
     "window": "windows/weight",
     "covariance": "covariance",
 }
+#: Optional fields (version 2): key of `infer.data.checks.assemble` → name inside the file.
+OPTIONAL_FIELDS = {
+    "channel_1": "bands/channel_1",
+    "channel_2": "bands/channel_2",
+    "noise": "bands/noise",
+    "fiducial": "bands/fiducial",
+    "beam_modes": "nuisance/beam_modes",
+}
+CHANNEL_FIELDS = ("channels/name", "channels/nu_ghz")
 
 
 def _attr_str(value) -> str:
@@ -79,6 +98,46 @@ def _version(path: Path, value) -> int:
         raise UserError(f"{path}: attribute 'format_version' is {version}: written by a newer "
                         f"infer; this one reads version {FORMAT_VERSION}")
     return version
+
+
+def _dataset(h5, path: Path, name: str):
+    """The array stored at ``name`` (a one-line `UserError` if it is missing, a group or unreadable)."""
+    if name not in h5:
+        raise UserError(f"{path}: {name}: missing field")
+    obj = h5[name]
+    if not isinstance(obj, h5py.Dataset):
+        raise UserError(f"{path}: {name}: expected a dataset, found a group")
+    try:
+        return obj[()]
+    except (OSError, ValueError, TypeError) as exc:
+        first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        raise UserError(f"{path}: {name}: cannot be read ({first})") from None
+
+
+def _strings(values, path: Path, name: str) -> np.ndarray:
+    """Stored strings (bytes or str) as a str array."""
+    arr = np.asarray(values)
+    if arr.ndim != 1 or arr.dtype.kind not in "SUO":
+        raise UserError(f"{path}: {name}: expected a 1-D array of strings, got {arr.dtype} of shape {arr.shape}")
+    return np.array([_attr_str(v) for v in arr], dtype=object).astype(str)
+
+
+def _channels(h5, path: Path) -> list[Channel]:
+    """The ``channels/`` group: names, centre frequencies, optional bandpasses (checked by `assemble`)."""
+    names = _strings(_dataset(h5, path, "channels/name"), path, "channels/name")
+    nu = np.asarray(_dataset(h5, path, "channels/nu_ghz"))
+    if nu.shape != names.shape or nu.dtype.kind not in "fiu":
+        raise UserError(f"{path}: channels/nu_ghz: expected {names.size} numbers (one per channels/name), "
+                        f"got {nu.dtype} of shape {nu.shape}")
+    out = []
+    for name, value in zip(names, nu.astype(float)):
+        group = f"channels/bandpass/{name}"
+        bnu = bw = None
+        if name and group in h5:
+            bnu = _dataset(h5, path, f"{group}/nu_ghz")
+            bw = _dataset(h5, path, f"{group}/weight")
+        out.append(Channel(str(name), None if np.isnan(value) else float(value), bnu, bw))
+    return out
 
 
 def read(path: Path, units=None, theory_ell_max=None) -> BandPowers:
@@ -115,19 +174,15 @@ def read(path: Path, units=None, theory_ell_max=None) -> BandPowers:
                                 f"{validate.show(value)}")
             experiment = validate.text(f"{path}: attribute", "experiment", _attr_str(value), empty=True,
                                        line=True)
-        raw = {}
-        for key, name in FIELDS.items():
-            if name not in h5:
-                raise UserError(f"{path}: {name}: missing field")
-            obj = h5[name]
-            if not isinstance(obj, h5py.Dataset):
-                raise UserError(f"{path}: {name}: expected a dataset, found a group")
-            try:
-                raw[key] = obj[()]
-            except (OSError, ValueError, TypeError) as exc:
-                first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
-                raise UserError(f"{path}: {name}: cannot be read ({first})") from None
-    labels = {key: f"{path}: {name}" for key, name in FIELDS.items()}
+        raw = {key: _dataset(h5, path, name) for key, name in FIELDS.items()}
+        for key, name in OPTIONAL_FIELDS.items():
+            raw[key] = _dataset(h5, path, name) if name in h5 else None
+        for key in ("channel_1", "channel_2"):
+            if raw[key] is not None:
+                raw[key] = _strings(raw[key], path, OPTIONAL_FIELDS[key])
+        raw["channels"] = _channels(h5, path) if "channels" in h5 else None
+    labels = {key: f"{path}: {name}" for key, name in {**FIELDS, **OPTIONAL_FIELDS}.items()}
+    labels["channels"] = f"{path}: channels"
     labels["units"] = f"{path}: attribute 'units'"
     return assemble(raw, units=file_units, experiment=experiment, source=str(path),
                     sha256=digest, labels=labels, theory_ell_max=theory_ell_max)
@@ -187,8 +242,31 @@ def write(bp: BandPowers, path, overwrite: bool = False, description: str = "") 
             windows.create_dataset("weight", data=window, compression="gzip", compression_opts=4,
                                    shuffle=True)
             h5.create_dataset("covariance", data=np.asarray(bp.covariance, dtype=float) / scale**2)
+            _write_optional(h5, bp, scale)
 
     return write_atomic(target, fill, overwrite=overwrite)
+
+
+def _write_optional(h5, bp: BandPowers, scale: float) -> None:
+    """The version-2 fields that differ from their single-channel defaults."""
+    if any(c.name for c in bp.channels):
+        bands = h5["bands"]
+        for key in ("channel_1", "channel_2"):
+            bands.create_dataset(key, data=np.array([str(c).encode() for c in getattr(bp, key)], dtype="S32"))
+        group = h5.create_group("channels")
+        group.create_dataset("name", data=np.array([c.name.encode() for c in bp.channels], dtype="S32"))
+        group.create_dataset("nu_ghz", data=np.array([np.nan if c.nu_ghz is None else c.nu_ghz
+                                                      for c in bp.channels], dtype=float))
+        for c in bp.channels:
+            if c.bandpass_nu_ghz is not None:
+                group.create_dataset(f"bandpass/{c.name}/nu_ghz", data=np.asarray(c.bandpass_nu_ghz, float))
+                group.create_dataset(f"bandpass/{c.name}/weight", data=np.asarray(c.bandpass_weight, float))
+    for key in ("noise", "fiducial"):
+        values = np.asarray(getattr(bp, key), float)
+        if np.isfinite(values).any():
+            h5["bands"].create_dataset(key, data=values / scale)
+    if bp.beam_modes.shape[0]:
+        h5.create_dataset("nuisance/beam_modes", data=np.asarray(bp.beam_modes, float))
 
 
 __all__ = ["read", "write", "check_target", "FORMAT", "FORMAT_VERSION", "SUFFIXES", "FIELDS"]

@@ -31,7 +31,8 @@ def load_data(cfg: Config):
     """The run's dataset, loaded, validated and cut to the requested spectra and ℓ range."""
     ds = cfg.dataset
     data = datasets.load(ds["file"], covariance=ds.get("covariance"), units=ds.get("units"))
-    return data.cut(spectra=ds.get("spectra"), ell_min=ds.get("ell_min"), ell_max=ds.get("ell_max"))
+    from infer.data import selection
+    return selection.cut(data, ds)
 
 
 class Posterior:
