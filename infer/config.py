@@ -32,7 +32,7 @@ from infer.parameters import (MIN_PRIOR_MASS, PARAM_KEYS, Parameter, Prior, _par
 #: ``function(path, table, base, theory, parameters)`` with ``table`` the section ({} if absent), ``base`` the
 #: run file's folder (for relative paths), ``theory`` the checked [theory] table and ``parameters`` the
 #: parsed [parameters.NAME] tables; it returns the validated value kept in ``Config.sections[name]``.
-SECTION_READERS: dict[str, str] = {}
+SECTION_READERS: dict[str, str] = {"likelihood": "infer.model.lowell:read_section"}
 SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "surrogate", "output"} | set(SECTION_READERS)
 RUN_KEYS = {"name", "seed"}
 SAMPLING_KEYS = {"engine", "walkers", "ensembles", "steps", "moves", "workers", "threads_per_worker",

@@ -128,3 +128,54 @@ def test_cross_correlation():
     cov = np.array([[1.0, 0.05, 0.3], [0.05, 1.0, 0.0], [0.3, 0.0, 1.0]])
     assert lowell.cross_correlation(cov, np.array([0])) == pytest.approx(0.3)
     assert lowell.cross_correlation(cov, np.arange(3)) == 0.0
+
+
+# -- the option in a run: the likelihood splits the dataset ---------------------------------------------
+def _run_with_low_ell(tmp_path, quick_data, engine="ensemble"):
+    import dataclasses
+    from infer import config, data as datasets
+    from tests.conftest import quick_config_text
+    bp = datasets.load(str(quick_data))
+    fid = np.asarray(bp.value, float).copy()
+    noise = np.where(bp.kind == "TE", 0.0, 5.0)
+    # the Templateville bins start at ℓ = 30: cover the first two bins of each spectrum
+    path = tmp_path / "low.h5"
+    fields = {f.name: getattr(bp, f.name) for f in dataclasses.fields(bp)}
+    datasets.write(datasets.from_arrays(kind=bp.kind, ell_lo=bp.ell_lo, ell_hi=bp.ell_hi, ell_eff=bp.ell_eff,
+                                        value=bp.value, covariance=bp.covariance, noise=noise, fiducial=fid,
+                                        experiment=fields["experiment"]), path)
+    text = quick_config_text(path, tmp_path / "c.h5") + '\n[likelihood]\nlow_ell = "hamimeche-lewis"\nlow_ell_max = 129\n'
+    if engine != "ensemble":
+        text = text.replace("[sampling]\n", f'[sampling]\nengine = "{engine}"\n')
+    run = tmp_path / "run.toml"
+    run.write_text(text)
+    return config.load(run)
+
+
+def test_run_likelihood_is_gaussian_part_plus_hamimeche_lewis(tmp_path, quick_data):
+    """ln L of a run with the option = Gaussian ln L of the other bands (scipy.stats.multivariate_normal)
+    + the Hamimeche–Lewis term of the covered bands."""
+    from scipy import stats
+    from infer.model.posterior import Posterior
+    post = Posterior(_run_with_low_ell(tmp_path, quick_data))
+    like = post.like
+    low = np.flatnonzero(post.data.ell_hi <= 129)
+    rest = np.setdiff1d(np.arange(like.n), low)
+    assert like.low is not None and low.size == 6
+    x = np.array([p.guess for p in post.cfg.sampled])
+    model = post.model_bands(x)
+    gauss = stats.multivariate_normal(model[rest], post.data.covariance[np.ix_(rest, rest)]).logpdf(post.data.value[rest])
+    hl = like.low
+    expect = gauss - 0.5 * hl.chi2(model[low]) - hl.lognorm
+    lp, blob, reason = post(x)
+    assert reason is None and blob[0] == pytest.approx(expect, rel=1e-10, abs=1e-8)
+    r = like.whiten(model)
+    assert float(r @ r) == pytest.approx(like.chi2(model), rel=1e-10)       # the optimiser's χ² = rᵀr
+
+
+def test_surrogate_engine_refuses_the_low_ell_option(tmp_path, quick_data):
+    from infer.errors import UserError
+    from infer.model.emulated import EmulatedProblem
+    cfg = _run_with_low_ell(tmp_path, quick_data, engine="surrogate")
+    with pytest.raises(UserError, match="not yet supported by the surrogate engine"):
+        EmulatedProblem(cfg)

@@ -23,6 +23,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
+from infer.errors import UserError
+
 from infer.fit.bands import BandModelFactory
 from infer.model.nuisance import CALIBRATION
 from infer.sampling.engine import Laplace
@@ -48,6 +50,10 @@ class EmulatedProblem:
         self.fit_starts = fit_starts
         self.fit_result = None
         self.surrogate = None
+        if self.like.low is not None:
+            raise UserError(f"{cfg.path}: [likelihood] low_ell = \"hamimeche-lewis\" is not yet supported by "
+                            "the surrogate engine (its vectorised likelihood is the Gaussian one); use "
+                            "sampling.engine = \"ensemble\" or drop the option")
         L = np.asarray(self.like._chol)
         self._chol = L
         self._data = np.asarray(self.like.data.value, float)

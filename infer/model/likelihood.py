@@ -27,7 +27,11 @@ from infer.theory.base import Spectra
 
 
 class BandPowerLikelihood:
-    def __init__(self, data):
+    """The Gaussian band-power likelihood; with ``options.low_ell = "hamimeche-lewis"`` the bands at
+    ℓ ≤ ``options.low_ell_max`` use the Hamimeche–Lewis likelihood (`infer.model.lowell`) instead, as a
+    block independent of the rest (the cross-covariance is ignored; a warning names its size)."""
+
+    def __init__(self, data, options=None, where: str = "[likelihood]"):
         self.data = data
         self.kinds = tuple(data.spectra)
         self.n = len(data.value)
@@ -36,11 +40,39 @@ class BandPowerLikelihood:
         self._ell = np.asarray(data.window_ell)
         # The window grid is contiguous (checked by the dataset loader), so D_ℓ is sliced, not gathered.
         self._span = slice(int(self._ell[0]), int(self._ell[-1]) + 1)
-        self._chol = np.asfortranarray(linalg.cholesky(np.asarray(data.covariance, float), lower=True))
+        self.low = None
+        self._gauss = np.arange(self.n)                 # bands of the Gaussian part
+        if options is not None and options.low_ell == "hamimeche-lewis":
+            self._split_low(options, where)
+        self._value = np.ascontiguousarray(np.asarray(data.value, float)[self._gauss])
+        cov = np.asarray(data.covariance, float)[np.ix_(self._gauss, self._gauss)]
+        self._chol = np.asfortranarray(linalg.cholesky(cov, lower=True))
         # BLAS triangular solve directly: scipy.linalg.solve_triangular adds ~50 µs of checks per call.
         self._trsv = linalg.blas.get_blas_funcs("trsv", (self._chol,))
-        self._lognorm = float(np.sum(np.log(np.diag(self._chol))) + 0.5 * self.n * math.log(2 * math.pi))
+        self._lognorm = float(np.sum(np.log(np.diag(self._chol))) + 0.5 * self._gauss.size * math.log(2 * math.pi))
+        if self.low is not None:
+            self._lognorm += self.low.lognorm
         self.nuisance = NuisanceModel(self._rows, self._win, self._ell, self.n)
+
+    def _split_low(self, options, where):
+        import logging
+        from infer.errors import UserError
+        from infer.model import lowell
+        rows = lowell.covered_rows(self.data, options.low_ell_max)
+        if rows.size == 0:
+            raise UserError(f"{where}: low_ell_max = {options.low_ell_max}: the dataset has no band at ℓ ≤ "
+                            f"{options.low_ell_max} for the Hamimeche–Lewis likelihood")
+        if rows.size == self.n:
+            raise UserError(f"{where}: low_ell_max = {options.low_ell_max} covers every band; the Gaussian "
+                            "part would be empty (lower low_ell_max)")
+        self.low = lowell.HamimecheLewis(self.data, rows, where)
+        self._low_rows = rows
+        self._gauss = np.setdiff1d(np.arange(self.n), rows)
+        rho = lowell.cross_correlation(np.asarray(self.data.covariance, float), rows)
+        if rho > lowell.CROSS_WARN:
+            logging.getLogger("infer").warning(
+                f"{where}: the low-ℓ bands correlate with the others up to {rho:.2f}; the Hamimeche–Lewis "
+                "block ignores this correlation")
 
     @property
     def lognorm(self) -> float:
@@ -55,8 +87,12 @@ class BandPowerLikelihood:
         return self.nuisance.apply(out, nuisance)
 
     def chi2(self, model: np.ndarray) -> float:
-        z = self._trsv(self._chol, self.data.value - model, lower=1)
-        return float(z @ z)
+        """−2 ln L − 2 lognorm: (d − m)ᵀ C⁻¹ (d − m), plus the Hamimeche–Lewis term of the low-ℓ bands."""
+        if self.low is None:
+            z = self._trsv(self._chol, self._value - model, lower=1)
+            return float(z @ z)
+        z = self._trsv(self._chol, self._value - model[self._gauss], lower=1)
+        return float(z @ z) + self.low.chi2(model[self._low_rows])
 
     def loglike(self, spectra: Spectra, nuisance: dict[str, float] | None = None) -> tuple[float, float]:
         """(ln L, χ²)."""
@@ -76,4 +112,11 @@ class BandPowerLikelihood:
 
     def whiten(self, model: np.ndarray) -> np.ndarray:
         """Whitened residuals r = L⁻¹ (d − m) with C = L Lᵀ, so that χ² = rᵀr (for least-squares optimisers)."""
-        return self._trsv(self._chol, self.data.value - np.asarray(model, float), lower=1)
+        model = np.asarray(model, float)
+        if self.low is None:
+            return self._trsv(self._chol, self._value - model, lower=1)
+        z = self._trsv(self._chol, self._value - model[self._gauss], lower=1)
+        x = self.low.vector(model[self._low_rows])
+        if x is None:
+            return np.concatenate([z, np.full(self._low_rows.size, 1e150)])
+        return np.concatenate([z, linalg.solve_triangular(self.low._chol[0], x, lower=True)])

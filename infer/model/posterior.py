@@ -40,7 +40,7 @@ class Posterior:
         self.cfg = cfg
         self.data = load_data(cfg) if data is None else data
         self.theory = make_theory(cfg.theory, self.data.ell_max_needed, where=f"{cfg.path}: [theory]")
-        self.like = BandPowerLikelihood(self.data)
+        self.like = BandPowerLikelihood(self.data, cfg.sections.get("likelihood"), f"{cfg.path}: [likelihood]")
         self.names = tuple(p.name for p in cfg.sampled)
         self.fixed = cfg.fixed
         self._check_names()
