@@ -12,7 +12,7 @@ from infer.theory import CODES, Setting, Theory, check_settings, theory_at_point
 def test_every_backend_declares_its_interface(code):
     cls = theory_class(code)
     assert cls.code == code
-    assert cls.inputs == cls.required + cls.one_of and len(set(cls.inputs)) == len(cls.inputs)
+    assert cls.inputs == cls.required + cls.one_of + cls.optional and len(set(cls.inputs)) == len(cls.inputs)
     assert set(cls.derived_tex) >= set(cls.derived_names)
     assert all(isinstance(s, Setting) for s in cls.SETTINGS.values())
     assert set(cls.point_settings) <= set(cls.SETTINGS)
