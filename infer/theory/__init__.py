@@ -1,6 +1,7 @@
 """Boltzmann backends behind one interface (`base.Theory`), chosen by ``[theory] code``.
 
 ``camb``: CAMB (Lewis, Challinor & Lasenby 2000, ApJ 538, 473) through its Python API.
+``class``: CLASS (Blas, Lesgourgues & Tram 2011, JCAP 07, 034) through ``classy``, the same parameter names.
 ``templates``: an exactly solvable linear model (no Boltzmann code) for testing and learning the machinery.
 
 A new backend is a `Theory` subclass in its own module, registered in `_MODULES`; importing this package
@@ -14,7 +15,8 @@ from infer.errors import UserError
 from infer.theory.base import KINDS, Setting, Spectra, Theory, TheoryError
 
 #: code → (module, class) of each backend.
-_MODULES = {"camb": ("infer.theory.camb", "CambTheory"), "templates": ("infer.theory.templates", "TemplateTheory")}
+_MODULES = {"camb": ("infer.theory.camb", "CambTheory"), "class": ("infer.theory.classy", "ClassTheory"),
+            "templates": ("infer.theory.templates", "TemplateTheory")}
 CODES = tuple(_MODULES)
 
 __all__ = ["KINDS", "Setting", "Spectra", "Theory", "TheoryError", "CODES", "check_settings", "make_theory",
