@@ -254,7 +254,7 @@ def test_write_summary_files(tmp_path):
     for _ in range(2):                                        # a second run replaces its own files
         paths = summary.write_summary(s, out, dataset=ds, best_model=model)
         assert set(p.name for p in paths.values()) == {"constraints.md", "constraints.tex", "triangle.png",
-                                                       "traces.png", "convergence.png", "bandpowers.png"}
+                                                       "traces.png", "convergence.png", "bandpowers.png", "residuals.png"}
         for p in paths.values():
             assert p.is_file() and p.stat().st_size > 0
             if p.suffix == ".png":

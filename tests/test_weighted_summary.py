@@ -275,7 +275,7 @@ def test_write_weighted_summary_files_and_the_users_files(tmp_path):
     for _ in range(2):                                       # a second run replaces its own files
         paths = summary.write_weighted_summary(ws, info, out, dataset=ds, best_model=model)
         assert {p.name for p in paths.values()} == {"constraints.md", "constraints.tex", "triangle.png",
-                                                    "weights.png", "bandpowers.png"}
+                                                    "weights.png", "bandpowers.png", "residuals.png"}
         for p in paths.values():
             assert p.is_file() and p.stat().st_size > 0
             if p.suffix == ".png":

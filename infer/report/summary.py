@@ -8,7 +8,7 @@ marginal constraints (`infer.analysis.marginals.constraints`) judged against the
 files.
 
 Files (`write_summary`): constraints.md, constraints.tex, triangle.png, traces.png, convergence.png and
-bandpowers.png when the data-vs-model figure is asked for. An importance-weighted exact sample of the
+bandpowers.png and residuals.png (per frequency pair) when the data-vs-model figures are asked for. An importance-weighted exact sample of the
 surrogate engine (`write_weighted_summary`) gets the same tables and triangle plot computed with the
 weights (`infer.analysis.weighted`), weights.png in place of the traces and convergence figures (which
 do not apply to it), and bandpowers.png for its best exact draw. Each is written with
@@ -44,10 +44,13 @@ log = logging.getLogger("infer")
 MANIFEST = ".infer-summary-files.json"
 FILES = {"markdown": "constraints.md", "latex": "constraints.tex", "triangle": "triangle.png",
          "traces": "traces.png", "convergence": "convergence.png", "bandpowers": "bandpowers.png",
+         "residuals": "residuals.png",
          "weights": "weights.png"}
 #: The files of a chain's summary and of an importance-weighted sample's (bandpowers.png optional in both).
-CHAIN_FILES = ("markdown", "latex", "triangle", "traces", "convergence", "bandpowers")
-WEIGHTED_FILES = ("markdown", "latex", "triangle", "weights", "bandpowers")
+CHAIN_FILES = ("markdown", "latex", "triangle", "traces", "convergence", "bandpowers", "residuals")
+WEIGHTED_FILES = ("markdown", "latex", "triangle", "weights", "bandpowers", "residuals")
+#: Files written only with the data-vs-model figures (one theory call).
+MODEL_FILES = ("bandpowers", "residuals")
 
 
 # -- files ---------------------------------------------------------------------------------------------
@@ -96,7 +99,7 @@ def check_outputs(outdir, bandpowers: bool = True, files=CHAIN_FILES) -> tuple[P
     paths.file_folder(outdir / FILES["markdown"])       # creates the folder and checks it is writable
     manifest = _load_manifest(outdir)
     for key in files:
-        if key != "bandpowers" or bandpowers:
+        if key not in MODEL_FILES or bandpowers:
             _check_target(outdir / FILES[key], manifest)
     return outdir, manifest
 
@@ -163,6 +166,7 @@ def write_summary(samples: Samples, outdir, burn: int | burnin.BurnIn | None = N
     }
     if dataset is not None:
         fills["bandpowers"] = lambda tmp: figures.bandpowers(dataset, best_model, tmp, fit=fit)
+        fills["residuals"] = lambda tmp: figures.residuals(dataset, best_model, tmp, fit=fit)
     return _write_all(outdir, manifest, fills)
 
 
@@ -198,6 +202,7 @@ def write_weighted_summary(ws: WeightedSample, result_info: dict | None, outdir,
     }
     if dataset is not None:
         fills["bandpowers"] = lambda tmp: figures.bandpowers(dataset, best_model, tmp, fit=fit)
+        fills["residuals"] = lambda tmp: figures.residuals(dataset, best_model, tmp, fit=fit)
     return _write_all(outdir, manifest, fills)
 
 
