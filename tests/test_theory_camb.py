@@ -227,7 +227,7 @@ def test_settings_defaults_describe_and_pickle():
     assert all(isinstance(v, (str, int, float, bool)) for v in desc.values())
     clone = pickle.loads(pickle.dumps(theory))
     assert clone.describe() == desc
-    assert CambTheory.inputs == CambTheory.required + CambTheory.one_of
+    assert CambTheory.inputs == CambTheory.required + CambTheory.one_of + CambTheory.optional
     assert CambTheory.one_of == ("H0", "theta_star_100")
 
 

@@ -1,4 +1,4 @@
-"""Lensed CMB spectra and derived parameters from CAMB, for flat ΛCDM with massive neutrinos.
+"""Lensed CMB spectra and derived parameters from CAMB, for ΛCDM and its common extensions.
 
 Method: the line-of-sight Boltzmann code CAMB (Lewis, Challinor & Lasenby 2000, ApJ 538, 473) through its
 Python API; lensed spectra by the curved-sky correlation-function method (Challinor & Lewis 2005, PRD 71,
@@ -7,10 +7,20 @@ countable `TheoryError`; the physics is CAMB's.
 
 Model and fixed assumptions (each also recorded by `CambTheory.describe`):
 
-* Spatially flat; cosmological constant; adiabatic power-law scalar spectrum A_s (k/0.05 Mpc⁻¹)^(n_s−1)
-  (CAMB's default pivot); no tensors.
+* By default spatially flat, a cosmological constant, an adiabatic power-law scalar spectrum
+  A_s (k/0.05 Mpc⁻¹)^(n_s−1) (CAMB's default pivot) and no tensors. The extensions are optional inputs
+  (`Theory.optional`), each sampled or fixed like any parameter and at its default when absent
+  (`OPTIONAL_DEFAULTS`): ``sum_mnu_eV`` and ``n_eff`` (defaults: the settings of the same names),
+  ``y_he`` (absent: from BBN), ``w0``/``wa`` (either given: the parametrised post-Friedmann dark energy
+  of Fang, Hu & Lewis 2008, PRD 78, 087303, CAMB's ``ppf``, which may cross w = −1; set before the θ_* →
+  H₀ solve), ``omega_k`` (|Ω_k| ≤ `OMEGA_K_MAX`, else ``outside-code-range``), ``r`` (given: tensors on,
+  n_t = −r/8 by CAMB's consistency default, primordial BB to ℓ = `TENSOR_ELL_MAX`), ``a_lens`` (CAMB's
+  ``Alens``, scaling the lensing potential in the lensed spectra) and ``n_run`` (dn_s/d ln k). Derived
+  besides: r_drag, r_*, z_*, z_drag (CAMB's), Ω_DE (``Omega_Lambda``: the dark-energy density today)
+  and ω_ν = Ω_ν h².
 * T₀ = 2.7255 K (Fixsen 2009, ApJ 707, 916: 2.72548 ± 0.00057 K), passed to CAMB explicitly.
-* Neutrinos: total mass ``sum_mnu_eV`` (default 0.06 eV) in one massive eigenstate, the rest of
+* Neutrinos: total mass ``sum_mnu_eV`` (default 0.06 eV) in one massive eigenstate (setting
+  ``neutrino_masses = "one-massive"``; ``"degenerate"``: three equal masses, up to 3 eV), the rest of
   ``n_eff`` (default 3.044) massless — common practice (the minimal mass of the normal ordering; N_eff =
   3.044 from the standard-model decoupling calculations of Froustey, Pitrou & Volpe 2020, JCAP 12, 015 and
   Bennett et al. 2021, JCAP 04, 073; cited from memory). The massive state carries N_eff/3 of the
@@ -102,8 +112,16 @@ SIGMA8_KMAX = 2.0
 THETA_H0_RANGE = (10.0, 100.0)
 #: Smallest τ accepted (see the module docstring).
 TAU_MIN = 0.01
-#: Largest Σm_ν accepted: beyond it one massive eigenstate is a poor stand-in for three near-degenerate ones.
+#: Largest Σm_ν accepted: beyond it one massive eigenstate is a poor stand-in for three near-degenerate ones
+#: (with ``neutrino_masses = "degenerate"`` up to MNU_MAX_DEGENERATE_EV).
 MNU_MAX_EV = 1.0
+MNU_MAX_DEGENERATE_EV = 3.0
+#: Curvature handled: |Ω_k| ≤ this (CAMB's closed models need care with the ℓ sampling beyond it).
+OMEGA_K_MAX = 0.3
+#: Defaults of the optional inputs (the extensions of flat ΛCDM); Σm_ν and N_eff default to the settings.
+OPTIONAL_DEFAULTS = {"w0": -1.0, "wa": 0.0, "omega_k": 0.0, "r": 0.0, "a_lens": 1.0, "n_run": 0.0}
+#: Largest ℓ of the tensor (primordial B-mode) spectrum when r is given; tensors are negligible beyond.
+TENSOR_ELL_MAX = 1500
 #: Non-linear model for the lensing potential at lens_potential_accuracy ≥ 1 (Mead et al. 2021).
 HALOFIT_VERSION = "mead2020"
 
@@ -114,9 +132,11 @@ SETTINGS = {
     "accuracy": Setting("choice", "standard", choices=tuple(ACCURACY_PRESETS),
                         help="accuracy preset (see the table above)"),
     "sum_mnu_eV": Setting("number", 0.06, low=0.0, high=MNU_MAX_EV, unit="eV",
-                          help="total neutrino mass, in one massive eigenstate"),
+                          help="total neutrino mass when it is not a parameter of the run"),
     "n_eff": Setting("number", STANDARD_N_EFF, low=0.0, low_open=True,
-                     help="effective number of relativistic species (within the BBN table for Y_He)"),
+                     help="N_eff when it is not a parameter of the run (within the BBN table for Y_He)"),
+    "neutrino_masses": Setting("choice", "one-massive", choices=("one-massive", "degenerate"),
+                               help="Σm_ν in one massive eigenstate, or shared by three degenerate ones"),
     "ell_margin": Setting("integer", 500, low=100, high=5000,
                           help="multipoles beyond the data's ell_max for the lensing convolution"),
 }
@@ -142,9 +162,14 @@ class CambTheory(Theory):
     required = ("omega_b", "omega_c", "ln_As_1e10", "n_s", "tau")
     #: Exactly one of these is read (H₀ in km/s/Mpc, or 100 θ_*).
     one_of = ("H0", "theta_star_100")
-    derived_names = ("H0", "Omega_m", "sigma_8", "S_8", "age_Gyr", "z_re", "theta_star_100")
+    #: Extensions of flat ΛCDM, read when the run gives them (defaults: `OPTIONAL_DEFAULTS` and the settings).
+    optional = ("sum_mnu_eV", "n_eff", "y_he", "w0", "wa", "omega_k", "r", "a_lens", "n_run")
+    derived_names = ("H0", "Omega_m", "sigma_8", "S_8", "age_Gyr", "z_re", "theta_star_100", "r_drag", "r_star",
+                     "z_star", "z_drag", "Omega_Lambda", "omega_nu")
     derived_tex = {"H0": r"H_0", "Omega_m": r"\Omega_{\rm m}", "sigma_8": r"\sigma_8", "S_8": r"S_8",
-                   "age_Gyr": r"t_0\,[\mathrm{Gyr}]", "z_re": r"z_{\rm re}", "theta_star_100": r"100\,\theta_*"}
+                   "age_Gyr": r"t_0\,[\mathrm{Gyr}]", "z_re": r"z_{\rm re}", "theta_star_100": r"100\,\theta_*",
+                   "r_drag": r"r_{\rm drag}\,[\mathrm{Mpc}]", "r_star": r"r_*\,[\mathrm{Mpc}]", "z_star": r"z_*",
+                   "z_drag": r"z_{\rm drag}", "Omega_Lambda": r"\Omega_{\rm DE}", "omega_nu": r"\omega_\nu"}
     SETTINGS = SETTINGS
     #: Fixed physical inputs a fiducial point may give (the mock generator passes them on as settings).
     point_settings = ("sum_mnu_eV", "n_eff")
@@ -169,6 +194,7 @@ class CambTheory(Theory):
         self._ombh2_range = (float(min(self._bbn.ombh2s)), float(max(self._bbn.ombh2s)))
         dn = self.settings["n_eff"] - STANDARD_N_EFF
         dn_lo, dn_hi = float(min(self._bbn.deltans)), float(max(self._bbn.deltans))
+        self._dn_range = (dn_lo, dn_hi)
         if not dn_lo <= dn <= dn_hi:
             raise UserError(f"{where}: n_eff = {self.settings['n_eff']} is outside the BBN table used for the "
                             f"helium fraction ({STANDARD_N_EFF + dn_lo:.3f} … {STANDARD_N_EFF + dn_hi:.3f})")
@@ -200,7 +226,7 @@ class CambTheory(Theory):
             "ell_margin": self.settings["ell_margin"],
             "nonlinear_lensing": HALOFIT_VERSION if preset["lens_potential_accuracy"] > 0 else "none",
             "sum_mnu_eV": self.settings["sum_mnu_eV"],
-            "num_massive_neutrinos": 1 if self.settings["sum_mnu_eV"] > 0 else 0,
+            "neutrino_masses": self.settings["neutrino_masses"],
             "n_eff": self.settings["n_eff"],
             "T_cmb_K": T_CMB_K,
             "YHe": "BBN " + self._bbn_table.replace("\\", "/").rsplit("/", 1)[-1],
@@ -221,35 +247,61 @@ class CambTheory(Theory):
 
     # -- one point --------------------------------------------------------------------------------------
 
-    def _cosmology(self, params: dict) -> tuple[dict, float, float]:
-        """Our parameters → (set_cosmology keywords, A_s, n_s); `TheoryError` for points CAMB must not see."""
+    def _cosmology(self, params: dict) -> tuple[dict, dict, dict]:
+        """Our parameters → (set_cosmology keywords, InitPower keywords, dark-energy keywords or {});
+        `TheoryError` for points CAMB must not see."""
         missing = [n for n in self.required if n not in params]
         given = [n for n in self.one_of if n in params]
         if missing or len(given) != 1:
             raise ValueError(f"CambTheory.compute needs {', '.join(self.required)} and exactly one of "
                              f"{', '.join(self.one_of)}; got {', '.join(sorted(params))}")
-        vals = {n: float(params[n]) for n in self.required + tuple(given)}
+        vals = {n: float(params[n]) for n in self.required + tuple(given) + self.optional if n in params}
         bad = [n for n, v in vals.items() if not math.isfinite(v)]
         if bad:
             raise TheoryError("unphysical", f"non-finite {', '.join(bad)}")
         if vals["omega_c"] <= 0.0 or vals["omega_b"] <= 0.0:
             raise TheoryError("unphysical", f"omega_b = {vals['omega_b']}, omega_c = {vals['omega_c']} "
                                             "must be positive")
-        lo, hi = self._ombh2_range
-        if not lo <= vals["omega_b"] <= hi:
-            raise TheoryError("bbn-out-of-range", f"omega_b = {vals['omega_b']} outside the BBN table "
-                                                  f"[{lo}, {hi}]")
+        mnu = vals.get("sum_mnu_eV", self.settings["sum_mnu_eV"])
+        nnu = vals.get("n_eff", self.settings["n_eff"])
+        degenerate = self.settings["neutrino_masses"] == "degenerate"
+        if mnu < 0.0 or nnu <= 0.0:
+            raise TheoryError("unphysical", f"sum_mnu_eV = {mnu}, n_eff = {nnu}")
+        if mnu > (MNU_MAX_DEGENERATE_EV if degenerate else MNU_MAX_EV):
+            raise TheoryError("outside-code-range", f"sum_mnu_eV = {mnu} (see MNU_MAX_EV)")
+        if "y_he" in vals:
+            if not 0.01 <= vals["y_he"] <= 0.5:
+                raise TheoryError("unphysical", f"y_he = {vals['y_he']} (need 0.01 … 0.5)")
+        else:
+            lo, hi = self._ombh2_range
+            if not lo <= vals["omega_b"] <= hi:
+                raise TheoryError("bbn-out-of-range", f"omega_b = {vals['omega_b']} outside the BBN table "
+                                                      f"[{lo}, {hi}]")
+            dn = nnu - STANDARD_N_EFF
+            if not self._dn_range[0] <= dn <= self._dn_range[1]:
+                raise TheoryError("bbn-out-of-range", f"n_eff = {nnu} outside the BBN table")
         if vals["tau"] < TAU_MIN:
             reason = "unphysical" if vals["tau"] <= 0.0 else "tau-out-of-range"
             raise TheoryError(reason, f"tau = {vals['tau']} (need tau >= {TAU_MIN})")
+        ext = {k: vals.get(k, v) for k, v in OPTIONAL_DEFAULTS.items()}
+        if abs(ext["omega_k"]) > OMEGA_K_MAX:
+            raise TheoryError("outside-code-range", f"omega_k = {ext['omega_k']} (|Ω_k| ≤ {OMEGA_K_MAX} handled)")
+        if ext["r"] < 0.0 or ext["a_lens"] < 0.0:
+            raise TheoryError("unphysical", f"r = {ext['r']}, a_lens = {ext['a_lens']} must be ≥ 0")
         try:
             A_s = math.exp(vals["ln_As_1e10"]) * 1e-10
         except OverflowError:
             raise TheoryError("unphysical", f"ln_As_1e10 = {vals['ln_As_1e10']}") from None
-        kw = {"ombh2": vals["omega_b"], "omch2": vals["omega_c"], "tau": vals["tau"],
-              "mnu": self.settings["sum_mnu_eV"], "num_massive_neutrinos": 1 if self.settings["sum_mnu_eV"] > 0 else 0,
-              "nnu": self.settings["n_eff"], "standard_neutrino_neff": STANDARD_N_EFF, "TCMB": T_CMB_K,
-              "YHe": None, "bbn_predictor": self._bbn}
+        kw = {"ombh2": vals["omega_b"], "omch2": vals["omega_c"], "tau": vals["tau"], "mnu": mnu,
+              "num_massive_neutrinos": (3 if degenerate else 1) if mnu > 0 else 0, "nnu": nnu,
+              "standard_neutrino_neff": STANDARD_N_EFF, "TCMB": T_CMB_K, "omk": ext["omega_k"],
+              "Alens": ext["a_lens"]}
+        if degenerate:
+            kw["neutrino_hierarchy"] = "degenerate"
+        if "y_he" in vals:
+            kw["YHe"] = vals["y_he"]
+        else:
+            kw.update(YHe=None, bbn_predictor=self._bbn)
         if "H0" in vals:
             if vals["H0"] <= 0.0:
                 raise TheoryError("unphysical", f"H0 = {vals['H0']}")
@@ -260,15 +312,24 @@ class CambTheory(Theory):
                 raise TheoryError("theta-out-of-range", f"theta_star_100 = {theta}")
             kw["thetastar"] = theta / 100.0
             kw["theta_H0_range"] = THETA_H0_RANGE
-        return kw, A_s, vals["n_s"]
+        power = {"As": A_s, "ns": vals["n_s"], "nrun": ext["n_run"], "r": ext["r"]}
+        dark = ({"w": ext["w0"], "wa": ext["wa"], "dark_energy_model": "ppf"}
+                if "w0" in vals or "wa" in vals else {})
+        return kw, power, dark
 
     def camb_params(self, params: dict):
         """CAMB's parameter structure for one point (a copy of the one built at set-up; also for benchmarks)."""
-        kw, A_s, n_s = self._cosmology(params)
+        kw, power, dark = self._cosmology(params)
         p = self._base.copy()
         try:
+            if dark:                             # before set_cosmology: a θ_* → H₀ solve uses the dark energy
+                p.set_dark_energy(**dark)
+            if "r" in params:                    # tensors (primordial BB) only when the run gives r
+                p.WantTensors = True
+                p.max_l_tensor = min(self.ell_max, TENSOR_ELL_MAX)
+                p.max_eta_k_tensor = 2.5 * p.max_l_tensor
             p.set_cosmology(**kw)
-            p.InitPower.set_params(As=A_s, ns=n_s)
+            p.InitPower.set_params(**power)
         except self._range_error as exc:
             reason = "theta-out-of-range" if "thetastar" in kw else "camb-error"
             raise TheoryError(reason, _short(exc)) from None
@@ -288,6 +349,7 @@ class CambTheory(Theory):
             H0 = float(par.H0)
             omega_m = (float(par.ombh2) + float(par.omch2) + float(par.omnuh2)) / (H0 / 100.0) ** 2
             z_re = float(par.Reion.redshift)
+            omega_de = float(res.get_Omega("de"))
         except Exception as exc:  # noqa: BLE001
             raise TheoryError("camb-error", _short(exc)) from None
 
@@ -306,6 +368,12 @@ class CambTheory(Theory):
             "age_Gyr": float(der["age"]),
             "z_re": z_re,
             "theta_star_100": float(der["thetastar"]),
+            "r_drag": float(der["rdrag"]),
+            "r_star": float(der["rstar"]),
+            "z_star": float(der["zstar"]),
+            "z_drag": float(der["zdrag"]),
+            "Omega_Lambda": omega_de,
+            "omega_nu": float(par.omnuh2),
         }
         if not all(np.all(np.isfinite(v)) for v in dl.values()) or not all(map(math.isfinite, derived.values())):
             raise TheoryError("non-finite", "CAMB returned NaN or inf")
