@@ -18,16 +18,16 @@ from infer.model import sed
 NU = np.array([30.0, 90.0, 150.0, 220.0, 353.0, 545.0])
 
 
-def planck_codata(nu_ghz, t):
+def blackbody_codata(nu_ghz, t):
     nu = nu_ghz * 1e9
     return 2 * sc.h * nu**3 / sc.c**2 / (np.exp(sc.h * nu / (sc.k * t)) - 1)
 
 
-def test_dbdt_equals_a_numerical_derivative_of_planck_law():
+def test_dbdt_equals_a_numerical_derivative_of_the_blackbody_law():
     h = 1e-4
-    numeric = (planck_codata(NU, 2.7255 + h) - planck_codata(NU, 2.7255 - h)) / (2 * h)
+    numeric = (blackbody_codata(NU, 2.7255 + h) - blackbody_codata(NU, 2.7255 - h)) / (2 * h)
     np.testing.assert_allclose(sed.dbdt(NU), numeric, rtol=1e-7)
-    np.testing.assert_allclose(sed.planck(NU, 2.7255), planck_codata(NU, 2.7255), rtol=1e-12)
+    np.testing.assert_allclose(sed.blackbody(NU, 2.7255), blackbody_codata(NU, 2.7255), rtol=1e-12)
 
 
 def test_thermodynamic_over_rayleigh_jeans_closed_form():

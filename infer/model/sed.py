@@ -34,7 +34,7 @@ def x_of(nu_ghz, t=T_CMB):
     return sc.h * np.asarray(nu_ghz, float) * 1e9 / (sc.k * t)
 
 
-def planck(nu_ghz, t):
+def blackbody(nu_ghz, t):
     """Planck's law B_ν(T), W m⁻² Hz⁻¹ sr⁻¹."""
     nu = np.asarray(nu_ghz, float) * 1e9
     return 2.0 * sc.h * nu ** 3 / sc.c ** 2 / np.expm1(sc.h * nu / (sc.k * t))
@@ -60,7 +60,7 @@ def tsz_f(nu_ghz):
 
 def mbb(nu_ghz, beta, td):
     """Modified blackbody intensity ν^β B_ν(T_d) (arbitrary normalisation, ν in GHz)."""
-    return np.asarray(nu_ghz, float) ** beta * planck(nu_ghz, td)
+    return np.asarray(nu_ghz, float) ** beta * blackbody(nu_ghz, td)
 
 
 def _integrate(y, nu):
