@@ -166,6 +166,20 @@ def check_dataset(state, data, cfg, chain) -> None:
                         "chain was started (SHA-256 differs)")
 
 
+def check_blobs(stored_names, posterior, chain) -> None:
+    """Refuse a resume whose posterior records other derived quantities than the chain holds (a chain
+    written by a version of infer whose theory backend returned a different set)."""
+    stored, now = tuple(stored_names), tuple(posterior.derived_names)
+    if stored != now:
+        extra = [n for n in now if n not in stored]
+        gone = [n for n in stored if n not in now]
+        what = "; ".join(part for part in (f"new: {', '.join(extra)}" if extra else "",
+                                           f"no longer returned: {', '.join(gone)}" if gone else "") if part)
+        raise UserError(f"refusing to resume {chain}: it records the derived quantities {', '.join(stored)} but "
+                        f"this version of the theory code returns others ({what or 'a different order'}); finish "
+                        "it with the version of infer that wrote it, or start a new chain")
+
+
 # -- the ensemble engine -------------------------------------------------------------------------------------
 def start(cfg, chain: Path, replace_existing: bool, clock) -> int:
     """A new run of ``cfg`` into ``chain`` (ensemble or surrogate engine); the exit code."""
@@ -224,6 +238,7 @@ def resume(chain: Path, config_path, override, extra_changes, clock, summary_che
             early, store, state, cfg, changes):
         posterior = Posterior(cfg)
         check_dataset(state, posterior.data, cfg, chain)
+        check_blobs(state.samples.derived_names, posterior, chain)
         if state.steps_done >= cfg.sampling.steps:
             log.info("%s already holds %d steps (requested %d); nothing to do — ask for more with --steps N",
                      chain, state.steps_done, cfg.sampling.steps)

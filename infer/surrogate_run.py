@@ -261,7 +261,7 @@ def start(cfg, chain, replace_existing: bool, clock) -> int:
 def resume(chain, config_path, override, extra_changes, clock, summary_check=None) -> int:
     """``infer resume`` of an engine chain: the engine re-runs over the stored exact calls (replayed) and
     computes the rest; a converged run with no change is left alone."""
-    from infer.run import check_dataset, resuming
+    from infer.run import check_blobs, check_dataset, resuming
     from infer.sampling.driver import event
     from infer.store.enginefile import EngineFile
     if any(c.startswith("--steps") for c in extra_changes):
@@ -271,6 +271,7 @@ def resume(chain, config_path, override, extra_changes, clock, summary_check=Non
             early, store, state, cfg, changes):
         problem = problem_for(cfg)
         check_dataset(state, problem.model.posterior.data, cfg, chain)
+        check_blobs(state.derived_names, problem, chain)
         if state.report is not None and state.report.get("converged") and not changes:
             log.info("%s has converged already (weight ESS %.0f, k̂ %.2f); nothing to do", chain,
                      state.report["ess"], state.report["khat"])
