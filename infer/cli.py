@@ -37,8 +37,15 @@ log = logging.getLogger("infer")
 #: The commands that use the evaluating MPI ranks; every other command runs on rank 0 alone.
 MPI_COMMANDS = ("run", "resume", "fit")
 #: Commands defined in their own modules: ``infer.commands.NAME`` has ``register(sub)``, which adds its
-#: sub-parser (with ``set_defaults(func=...)``), and ``MPI = True`` if it uses the evaluating ranks.
-COMMAND_MODULES: tuple[str, ...] = ()
+#: sub-parser (with ``set_defaults(func=...)``), and ``MPI = True`` if it uses the evaluating ranks. Every
+#: module of the folder is a command (found by name, never imported until the parser is built).
+def _command_modules() -> tuple[str, ...]:
+    import pkgutil
+    import infer.commands
+    return tuple(sorted(m.name for m in pkgutil.iter_modules(infer.commands.__path__) if not m.name.startswith("_")))
+
+
+COMMAND_MODULES: tuple[str, ...] = _command_modules()
 
 
 # -- helpers ---------------------------------------------------------------------------------------------

@@ -1,4 +1,4 @@
-"""Commands of ``infer`` that live in modules of their own (listed in `infer.cli.COMMAND_MODULES`).
+"""Commands of ``infer`` that live in modules of their own (every module of this folder whose name does not start with "_"; `infer.cli.COMMAND_MODULES` lists them).
 
 Each module ``infer.commands.NAME`` defines ``register(sub)`` — it adds the sub-parser ``NAME`` to the
 argparse sub-parsers ``sub`` and sets ``func`` (a function of the parsed arguments returning the exit
