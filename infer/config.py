@@ -32,7 +32,9 @@ from infer.parameters import (MIN_PRIOR_MASS, PARAM_KEYS, Parameter, Prior, _par
 #: ``function(path, table, base, theory, parameters)`` with ``table`` the section ({} if absent), ``base`` the
 #: run file's folder (for relative paths), ``theory`` the checked [theory] table and ``parameters`` the
 #: parsed [parameters.NAME] tables; it returns the validated value kept in ``Config.sections[name]``.
-SECTION_READERS: dict[str, str] = {"likelihood": "infer.model.lowell:read_section"}
+SECTION_READERS: dict[str, str] = {"likelihood": "infer.model.lowell:read_section",
+                                   "nuisance": "infer.model.nuisance:read_section",
+                                   "derived": "infer.model.priors:read_derived_section"}
 SECTIONS = {"run", "dataset", "theory", "parameters", "sampling", "stopping", "surrogate", "output"} | set(SECTION_READERS)
 RUN_KEYS = {"name", "seed"}
 SAMPLING_KEYS = {"engine", "walkers", "ensembles", "steps", "moves", "workers", "threads_per_worker",
@@ -161,7 +163,12 @@ class Config:
 
     @property
     def sampled(self) -> tuple[Parameter, ...]:
-        return tuple(p for p in self.parameters if p.value is None)
+        return tuple(p for p in self.parameters if p.value is None and not p.analytic)
+
+    @property
+    def analytic(self) -> tuple[Parameter, ...]:
+        """Parameters integrated out in closed form (``analytic = true``): neither sampled nor fixed."""
+        return tuple(p for p in self.parameters if p.analytic)
 
     @property
     def fixed(self) -> dict[str, float]:
@@ -244,8 +251,9 @@ def parse(text: str, path: str) -> Config:
     if not isinstance(params_raw, dict) or not params_raw:
         raise UserError(f"{path}: missing [parameters.NAME] tables")
     parameters = tuple(_parameter(path, n, t) for n, t in params_raw.items())
-    if not any(p.value is None for p in parameters):
-        raise UserError(f"{path}: no sampled parameter (every [parameters.NAME] has a fixed 'value')")
+    if not any(p.value is None and not p.analytic for p in parameters):
+        raise UserError(f"{path}: no sampled parameter (every [parameters.NAME] has a fixed 'value' or "
+                        "analytic = true)")
 
     def moves(p, k, v):
         return validate.choice(p, k, v, MOVES)
@@ -257,7 +265,7 @@ def parse(text: str, path: str) -> Config:
     validate.check_keys(path, "sampling", sm, SAMPLING_KEYS)
     rules = {key: _limited for key in SAMPLING_KEYS if key not in ("moves", "engine")}
     sampling = _dataclass_from(path, "sampling", sm, Sampling, {**rules, "moves": moves, "engine": engine})
-    n_sampled = sum(p.value is None for p in parameters)
+    n_sampled = sum(p.value is None and not p.analytic for p in parameters)
     if sampling.walkers < 2 * n_sampled or sampling.walkers % 2:
         raise UserError(f"{path}: 'sampling.walkers' must be even and at least twice the number of sampled "
                         f"parameters ({2 * n_sampled}), got {sampling.walkers}")

@@ -19,7 +19,7 @@ from scipy import special
 from infer import validate
 from infer.errors import UserError
 
-PARAM_KEYS = {"prior", "value", "guess", "spread", "tex"}
+PARAM_KEYS = {"prior", "value", "guess", "spread", "tex", "analytic"}
 #: Smallest probability a truncated-normal prior may hold inside its range.
 MIN_PRIOR_MASS = 1e-12
 
@@ -39,6 +39,7 @@ class Parameter:
     guess: float | None
     spread: float | None
     tex: str
+    analytic: bool = False       # integrated out in closed form (infer.model.marginal), not sampled
 
 
 def truncnormal_log_mass(mu: float, sd: float, lo: float, hi: float) -> float:
@@ -66,8 +67,8 @@ def log_normalisation(prior: "Prior") -> float:
     return -(math.log(sd * math.sqrt(2.0 * math.pi)) + log_z)     # σ√(2π) overflowing: −∞
 
 
-def _prior(path, name, spec) -> Prior:
-    key = f"parameters.{name}.prior"
+def _prior(path, name, spec, section: str = "parameters") -> Prior:
+    key = f"{section}.{name}.prior"
     if not isinstance(spec, dict) or not spec:
         raise UserError(f"{path}: '{key}' must be a table such as {{ uniform = [0.0, 1.0] }} "
                         "or { normal = [mean, sd] } (optionally with range = [lo, hi]), "
@@ -124,6 +125,8 @@ def _parameter(path, name, table) -> Parameter:
     validate.check_keys(path, f"parameters.{name}", table, PARAM_KEYS)
     tex = validate.text(path, f"parameters.{name}.tex", table.get("tex", name), empty=True, line=True)
     if "value" in table:
+        if "analytic" in table:
+            raise UserError(f"{path}: 'parameters.{name}' is fixed ('value'); 'analytic' goes with a prior")
         if "prior" in table:
             raise UserError(f"{path}: 'parameters.{name}' has both 'value' (fixed) and 'prior' (sampled)")
         return Parameter(name, None, float(validate.number(path, f"parameters.{name}.value", table["value"])),
@@ -131,6 +134,15 @@ def _parameter(path, name, table) -> Parameter:
     if "prior" not in table:
         raise UserError(f"{path}: 'parameters.{name}' needs a 'prior' (sampled) or a 'value' (fixed)")
     prior = _prior(path, name, table["prior"])
+    if "analytic" in table:
+        if not isinstance(table["analytic"], bool):
+            raise UserError(f"{path}: 'parameters.{name}.analytic' must be true or false, "
+                            f"got {validate.show(table['analytic'])}")
+        if table["analytic"]:
+            if prior.kind != "normal":
+                raise UserError(f"{path}: 'parameters.{name}': analytic = true needs an untruncated normal "
+                                "prior (the closed-form integral is over a Gaussian)")
+            return Parameter(name, prior, None, None, None, tex, analytic=True)
     lo, hi = support(prior)
     if prior.kind == "uniform":
         mid = 0.5 * (lo + hi) if math.isfinite(lo + hi) else lo + 0.5 * (hi - lo)

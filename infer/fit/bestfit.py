@@ -96,14 +96,17 @@ def _plain(x):
 
 class Objective:
     """Residual rows [L⁻¹(d − m(θ)), (θ_g − μ_g)/σ_g] of points given in scale units u = (θ − centre)/scale,
-    from an evaluator whose blob starts with the model band powers; keeps every evaluated point."""
+    from an evaluator whose blob starts with the binned theory (`BandModel.residuals` whitens it; with
+    analytic parameters the first block is the marginal one, of length N + K); keeps every evaluated point."""
 
-    def __init__(self, evaluator, like, centre, scale, mu, sd):
-        self.evaluator, self.like = evaluator, like
+    def __init__(self, evaluator, model, centre, scale, mu, sd, posterior: bool = True):
+        self.evaluator, self.model = evaluator, model
         self.centre, self.scale = np.asarray(centre, float), np.asarray(scale, float)
         self.gauss = np.isfinite(sd)
         self.mu, self.sd = np.asarray(mu, float), np.asarray(sd, float)
-        self.n = like.n
+        self.n = model.n_residuals
+        # Gaussian priors on derived quantities (``[derived.NAME]``) are residual rows too (posterior mode).
+        self.dprior = _derived_rows(model, posterior)
         self.records: list[tuple[np.ndarray, float, np.ndarray, str | None]] = []
 
     def theta(self, u):
@@ -112,12 +115,15 @@ class Objective:
     def __call__(self, U):
         T = self.theta(np.atleast_2d(U))
         lp, blobs, reasons = self.evaluator.evaluate(T)
-        R = np.full((len(T), self.n + int(self.gauss.sum())), np.nan)
+        ng = int(self.gauss.sum())
+        R = np.full((len(T), self.n + ng + len(self.dprior)), np.nan)
         for i, (t, b, why) in enumerate(zip(T, blobs, reasons)):
             self.records.append((t.copy(), float(lp[i]), np.array(b), why))
-            if why is None and np.all(np.isfinite(b[:self.n])):
-                R[i, :self.n] = self.like.whiten(b[:self.n])
-                R[i, self.n:] = (t[self.gauss] - self.mu[self.gauss]) / self.sd[self.gauss]
+            if why is None and np.all(np.isfinite(b[:self.model.n_bands])):
+                R[i, :self.n] = self.model.residuals(t, b)
+                R[i, self.n:self.n + ng] = (t[self.gauss] - self.mu[self.gauss]) / self.sd[self.gauss]
+                for j, (k, m, s) in enumerate(self.dprior):
+                    R[i, self.n + ng + j] = (b[self.model.n_bands + k] - m) / s
         return R
 
     def record_at(self, theta):
@@ -125,6 +131,20 @@ class Objective:
             if np.array_equal(t, theta):
                 return lp, b, why
         raise KeyError("point not evaluated")
+
+
+def _derived_rows(model, posterior: bool):
+    """(index in the derived blob, mean, sd) of each Gaussian ``[derived.NAME]`` prior (posterior mode);
+    uniform derived priors act as bounds through ln p = −∞ (points outside count as failed)."""
+    post = model.posterior
+    if not posterior or post.derived_priors is None:
+        return []
+    rows = []
+    for name, k in zip(post.derived_priors.names, post._derived_prior_index):
+        prior = post.cfg.sections["derived"][name]
+        if prior.kind != "uniform":
+            rows.append((model.derived_names.index(post._derived[k]), prior.args[0], prior.args[1]))
+    return rows
 
 
 def starting_points(cfg, n: int, seed_offset: int = 0) -> np.ndarray:
@@ -179,7 +199,7 @@ def _fit(cfg, model, evaluator, starts, mode, options, t0) -> FitResult:
     mu = np.array([p.prior.args[0] if p.prior.kind != "uniform" else 0.0 for p in sampled])
     sd = np.array([p.prior.args[1] if p.prior.kind != "uniform" and mode == "posterior" else np.inf
                    for p in sampled])
-    obj = Objective(evaluator, model.like, guess, scale, mu, sd)
+    obj = Objective(evaluator, model, guess, scale, mu, sd, posterior=mode == "posterior")
     U0 = (starting_points(cfg, starts) - guess) / scale
     log.info("fit: %s of '%s', %d parameters, %d start%s", "MAP" if mode == "posterior" else "MLE",
              cfg.name, P, starts, "" if starts == 1 else "s")
@@ -196,11 +216,11 @@ def _fit(cfg, model, evaluator, starts, mode, options, t0) -> FitResult:
         calls += len(pts)
     theta = obj.theta(res.u)
     lp, blob, _ = obj.record_at(theta)
-    n = model.like.n
-    bands = blob[:n]
-    chi2 = float(np.sum(res.r[:n] ** 2))
-    chi2_prior = float(np.sum(res.r[n:] ** 2))
-    lap = laplace(jac[:n] / scale, sd)
+    n, nr = model.like.n, model.n_residuals
+    bands = model.model_bands(theta, blob)
+    chi2 = float(np.sum(res.r[:nr] ** 2))
+    chi2_prior = float(np.sum(res.r[nr:] ** 2))
+    lap = laplace(jac[:nr] / scale, sd)
     dof = n - P
     quality = model.like.fit_quality(bands, P)
     per = {k: {"chi2": c, "n_bands": m, "pte": model.like.pte(c, m)} for k, (c, m) in quality.by_kind.items()}
@@ -217,8 +237,10 @@ def _fit(cfg, model, evaluator, starts, mode, options, t0) -> FitResult:
         mode=mode, names=names, best=dict(zip(names, theta.tolist())), sigma=dict(zip(names, lap["sigma"].tolist())),
         covariance=lap["covariance"].tolist(), correlation=lap["correlation"].tolist(),
         curvature=lap["curvature"].tolist(), at_bound=at_bound,
-        derived=dict(zip(model.derived_names, blob[n:].tolist())),
-        neg2_log_like=chi2 + 2 * model.like.lognorm, log_post=lp if mode == "posterior" else None,
+        derived=dict(zip(model.derived_names, blob[model.n_bands:].tolist())),
+        neg2_log_like=-2.0 * model.like.loglike_bands(np.asarray(blob[:model.n_bands], float),
+                                                      model.nuisance(theta))[0],
+        log_post=lp if mode == "posterior" else None,
         chi2=chi2, chi2_prior=chi2_prior, n_bands=n, dof=dof, pte=model.like.pte(chi2, dof), per_spectrum=per,
         calls=calls, iterations=res.iterations, converged=res.converged, reason=res.reason,
         starts=[dict(s, start=dict(zip(names, obj.theta(s["start"]).tolist())),

@@ -6,13 +6,14 @@ The surrogate engine (`infer.sampling.engine`) knows no cosmology; this module s
 * ``best_fit(evaluate)`` — the MAP and its Laplace covariance by the damped least-squares fit of
   `infer.fit.bestfit` (Levenberg–Marquardt on the whitened band-power residuals), its exact calls made
   through the engine's ``evaluate`` so that they are logged and replayed like every other exact call;
-* ``targets(X, blobs)`` — the *binned theory band powers* B(θ) at exact points, recovered exactly from the
-  model band powers m = c² (B + Σ_k A_k F_k) that the exact calls return (`infer.fit.bands`), by undoing
-  the nuisance terms at each point;
+* ``targets(X, blobs)`` — the *binned theory band powers* B(θ) at exact points, which the exact calls
+  return in their blobs (`infer.fit.bands`);
 * ``train(X, Y, laplace)`` — a `infer.theory.surrogate.Surrogate` of B(θ_theory) over the sampled inputs
   of the theory only (PCA of the whitened band powers plus the regression chosen by held-out Δχ²), and the
   vectorised surrogate log-posterior built on it: **priors, nuisance terms and the Gaussian likelihood
-  stay exact**, only the Boltzmann call is replaced (ln p̃ = ln π(θ) − ½ χ²(d, c²(B̃ + Σ A F)) − ½ ln det 2πC).
+  stay exact**, only the Boltzmann call is replaced (ln p̃ = ln π(θ) + ln L(d | B̃(θ), nuisance), the
+  likelihood's own vectorised `loglike_many`, analytic marginalisation included). Priors on derived
+  quantities are not emulated: the importance weights bring them in exactly.
 
 Exact calls use `infer.fit.bands.BandModelFactory` (blob = model band powers, then the theory's derived
 values), so one kind of exact call serves the fit, the design, the training and the correction; the
@@ -26,7 +27,6 @@ from scipy import linalg
 from infer.errors import UserError
 
 from infer.fit.bands import BandModelFactory
-from infer.model.nuisance import CALIBRATION
 from infer.sampling.engine import Laplace
 
 
@@ -44,7 +44,7 @@ class EmulatedProblem:
         self.n_bands = self.like.n
         inputs = set(post.theory.inputs)
         self.theory_index = np.array([i for i, n in enumerate(self.names) if n in inputs], dtype=int)
-        self.nuisance_names = [n for n in post._nuisance]
+        self.nuisance_names = list(post._nuisance)
         self.fixed = dict(post.fixed)
         self.options = dict(surrogate_options or {})
         self.fit_starts = fit_starts
@@ -59,33 +59,19 @@ class EmulatedProblem:
         self._data = np.asarray(self.like.data.value, float)
 
     # -- nuisance terms, vectorised ------------------------------------------------------------------
-    def _nuisance(self, X):
-        """Per row of X: calibration c (n,) and every foreground amplitude {name: (n,)}."""
+    def _nuisance(self, X) -> dict[str, np.ndarray]:
+        """Per row of X: the value of every nuisance parameter the run gives (sampled or fixed)."""
         X = np.atleast_2d(X)
-        vals = {}
-        for name in [CALIBRATION] + [n for n, _ in self.like.nuisance.templates]:
-            if name in self.names:
-                vals[name] = X[:, self.names.index(name)]
-            else:
-                from infer.model.nuisance import NUISANCE
-                vals[name] = np.full(len(X), float(self.fixed.get(name, NUISANCE[name])))
-        return vals
+        return {name: (X[:, self.names.index(name)] if name in self.names else
+                       np.full(len(X), float(self.fixed[name]))) for name in self.nuisance_names}
 
     def model_from_theory(self, X, B):
-        """m = c² (B + Σ_k A_k F_k) per row (the `infer.model.nuisance` model, vectorised)."""
-        nu = self._nuisance(X)
-        m = np.array(B, float, copy=True)
-        for name, f in self.like.nuisance.templates:
-            m += nu[name][:, None] * f[None, :]
-        return m * (nu[CALIBRATION] ** 2)[:, None]
+        """Model bands m (n, N) per row from binned theory B (the `infer.model.nuisance` model)."""
+        return self.like.model_many(B, self._nuisance(X))
 
     def targets(self, X, blobs):
-        """Binned theory B (n, N) from the model band powers in the exact blobs, nuisance undone."""
-        nu = self._nuisance(X)
-        B = np.asarray(blobs, float)[:, :self.n_bands] / (nu[CALIBRATION] ** 2)[:, None]
-        for name, f in self.like.nuisance.templates:
-            B = B - nu[name][:, None] * f[None, :]
-        return B
+        """Binned theory B (n, N): the first N entries of the exact blobs (`infer.fit.bands`)."""
+        return np.asarray(blobs, float)[:, :self.n_bands]
 
     # -- the engine's stages -----------------------------------------------------------------------
     def best_fit(self, evaluate) -> Laplace:
@@ -115,7 +101,7 @@ class EmulatedProblem:
 
     def logpost_function(self, sur):
         """The vectorised surrogate log-posterior ln p̃(X) (n,) for a fitted surrogate."""
-        idx, L, d, lognorm, priors = self.theory_index, self._chol, self._data, self.like.lognorm, self.priors
+        idx, priors, like = self.theory_index, self.priors, self.like
 
         def logpost(X):
             X = np.atleast_2d(np.asarray(X, float))
@@ -123,9 +109,8 @@ class EmulatedProblem:
             ok = np.isfinite(lp)
             out = np.full(len(X), -np.inf)
             if ok.any():
-                m = self.model_from_theory(X[ok], sur.predict_many(X[ok][:, idx]))
-                z = linalg.solve_triangular(L, (d[None, :] - m).T, lower=True, check_finite=False)
-                out[ok] = lp[ok] - 0.5 * np.einsum("ij,ij->j", z, z) - lognorm
+                ll, _ = like.loglike_many(sur.predict_many(X[ok][:, idx]), self._nuisance(X[ok]))
+                out[ok] = lp[ok] + ll
             return out
         return logpost
 
@@ -133,13 +118,12 @@ class EmulatedProblem:
     def chain_blobs(self, X, log_post, blobs):
         """ln L (n,), derived (n, D) with D = theory derived values then χ², from exact BandModel blobs."""
         blobs = np.asarray(blobs, float)
-        m = blobs[:, :self.n_bands]
+        X = np.atleast_2d(np.asarray(X, float))
         ok = np.isfinite(log_post)
-        chi2 = np.full(len(m), np.nan)
+        chi2 = np.full(len(blobs), np.nan)
+        log_like = np.full(len(blobs), np.nan)
         if ok.any():
-            z = linalg.solve_triangular(self._chol, (self._data[None, :] - m[ok]).T, lower=True)
-            chi2[ok] = np.einsum("ij,ij->j", z, z)
-        log_like = -0.5 * chi2 - self.like.lognorm
+            log_like[ok], chi2[ok] = self.like.loglike_many(blobs[ok, :self.n_bands], self._nuisance(X[ok]))
         derived = np.concatenate([blobs[:, self.n_bands:], chi2[:, None]], axis=1)
         return log_like, derived
 

@@ -19,8 +19,10 @@ import numpy as np
 from infer.config import Config
 from infer import data as datasets
 from infer.errors import UserError
-from infer.model.likelihood import NUISANCE, BandPowerLikelihood, FitQuality
-from infer.model.priors import PriorSet
+from infer.config import support
+from infer.model.likelihood import BandPowerLikelihood, FitQuality
+from infer.model.marginal import AnalyticMarginal
+from infer.model.priors import DerivedPriors, PriorSet
 from infer.theory import TheoryError, make_theory
 
 #: The blob field holding the χ² of the point, and its label.
@@ -40,31 +42,63 @@ class Posterior:
         self.cfg = cfg
         self.data = load_data(cfg) if data is None else data
         self.theory = make_theory(cfg.theory, self.data.ell_max_needed, where=f"{cfg.path}: [theory]")
-        self.like = BandPowerLikelihood(self.data, cfg.sections.get("likelihood"), f"{cfg.path}: [likelihood]")
         self.names = tuple(p.name for p in cfg.sampled)
         self.fixed = cfg.fixed
+        analytic = cfg.analytic
+        marginal = AnalyticMarginal([p.name for p in analytic], [p.prior.args[0] for p in analytic],
+                                    [p.prior.args[1] for p in analytic])
+        self.like = BandPowerLikelihood(self.data, cfg.sections.get("likelihood"), f"{cfg.path}: [likelihood]",
+                                        cfg.sections.get("nuisance"), analytic=marginal)
+        self.analytic_names = marginal.names
         self._check_names()
         self.priors = PriorSet(cfg.sampled, where=cfg.path)
         # A derived value that is also sampled (H0 or theta_star_100, say) would only repeat its input.
         self._derived = tuple(n for n in self.theory.derived_names if n not in self.names)
         self.derived_names = self._derived + (CHI2,)
         self.blob_names = ("log_like",) + self.derived_names
-        self._nuisance = [n for n in NUISANCE if n in self.names or n in self.fixed]
+        self._nuisance = [n for n in self.like.nuisance.defaults if n in self.names or n in self.fixed]
         self._inputs = [n for n in self.theory.inputs if n in self.names or n in self.fixed]
+        self.derived_priors = self._derived_priors(cfg.sections.get("derived") or {})
 
     def _check_names(self):
-        given = set(self.names) | set(self.fixed)
+        given = set(self.names) | set(self.fixed) | set(self.analytic_names)
         theory, code = self.theory, self.cfg.theory["code"]
-        known = set(theory.inputs) | set(NUISANCE)
+        nuisance = self.like.nuisance
+        known = set(theory.inputs) | set(nuisance.defaults)
         for name in sorted(given - known):
             raise UserError(f"{self.cfg.path}: [parameters.{name}] is not read by theory code "
-                            f"'{code}' nor a nuisance parameter (known: {', '.join(sorted(known))})")
+                            f"'{code}' nor a nuisance parameter of this dataset and [nuisance] section "
+                            f"(known: {', '.join(sorted(known))})")
+        for p in self.cfg.parameters:
+            if p.name in nuisance.ranges:
+                a, b = nuisance.ranges[p.name]
+                lo, hi = (p.value, p.value) if p.value is not None else support(p.prior)
+                if not (a <= lo and hi <= b):
+                    raise UserError(f"{self.cfg.path}: [parameters.{p.name}] must lie within its physical "
+                                    f"range [{a:g}, {b:g}] (its {'value' if p.value is not None else 'prior support'} "
+                                    f"is [{lo:g}, {hi:g}]; bound it with a uniform prior or 'range')")
         for name in theory.missing_inputs(given):
             raise UserError(f"{self.cfg.path}: theory code '{code}' needs [parameters.{name}] "
                             "(sampled with 'prior' or fixed with 'value')")
         if theory.one_of and len(theory.chosen_inputs(given)) != 1:
             raise UserError(f"{self.cfg.path}: give exactly one of " +
                             ", ".join(f"[parameters.{n}]" for n in theory.one_of))
+
+    def _derived_priors(self, priors: dict) -> DerivedPriors | None:
+        for name in priors:
+            if name not in self._derived:
+                raise UserError(f"{self.cfg.path}: [derived.{name}]: {name} is not a derived quantity of theory "
+                                f"code '{self.cfg.theory['code']}' (derived: {', '.join(self._derived) or 'none'})")
+        if not priors:
+            return None
+        self._derived_prior_index = [self._derived.index(n) for n in priors]
+        return DerivedPriors(priors, where=self.cfg.path)
+
+    def derived_log_prior(self, derived_values) -> float:
+        """ln π of the ``[derived.NAME]`` priors for the theory's derived values (``_derived`` order)."""
+        if self.derived_priors is None:
+            return 0.0
+        return self.derived_priors.logpdf([derived_values[i] for i in self._derived_prior_index])
 
     # -- one point ---------------------------------------------------------------------------------
     def point(self, x: np.ndarray) -> dict[str, float]:
@@ -99,12 +133,23 @@ class Posterior:
         blob[0] = ll
         blob[1:-1] = [spectra.derived[n] for n in self._derived]
         blob[-1] = chi2
-        return lp + ll, blob, None
+        lp_derived = self.derived_log_prior(blob[1:-1])
+        if lp_derived == -math.inf:
+            return -math.inf, blob, "outside-derived-prior"
+        return lp + lp_derived + ll, blob, None
 
     def model_bands(self, x: np.ndarray) -> np.ndarray:
         """Model band powers at one point (for the data-vs-model figure)."""
         spectra = self.theory.compute(self.theory_inputs(x))
         return self.like.model(spectra, self.nuisance_values(x))
+
+    def analytic_fit(self, x: np.ndarray) -> dict[str, tuple[float, float]]:
+        """Conditional best fit and standard deviation of each analytic parameter at ``x`` (one theory call;
+        empty without analytic parameters)."""
+        if not self.analytic_names:
+            return {}
+        spectra = self.theory.compute(self.theory_inputs(x))
+        return self.like.conditional(self.like.binned(spectra), self.nuisance_values(x))
 
     def fit_quality(self, x: np.ndarray) -> tuple[np.ndarray, FitQuality]:
         """Model band powers at ``x`` and their fit quality (χ², PTE for N − P dof, χ² per kind), with P

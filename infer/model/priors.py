@@ -81,3 +81,41 @@ class PriorSet:
     @property
     def bounds(self) -> dict[str, tuple[float, float]]:
         return {n: (float(a), float(b)) for n, a, b in zip(self.names, self.lower, self.upper)}
+
+
+class DerivedPriors:
+    """Priors on derived quantities (``[derived.NAME] prior = ...``), applied after the theory call:
+    ln p(θ) gains ln π_D(D(θ)) for each derived quantity D — a prior on a function of the parameters,
+    e.g. a Gaussian on H₀ while θ_* is sampled. Same three kinds as `PriorSet`, each normalised in D."""
+
+    def __init__(self, priors: dict, where: str = "run file"):
+        from infer.config import Parameter as _P
+        self.names = tuple(priors)
+        self._set = PriorSet(tuple(_P(n, p, None, None, None, n) for n, p in priors.items()), where)
+
+    def logpdf(self, values) -> float:
+        """ln π_D at the derived values (in ``names`` order); −∞ outside a derived prior's support."""
+        return self._set.logpdf(np.asarray(values, float))
+
+
+def read_derived_section(path, table, base, theory, parameters) -> dict:
+    """The ``[derived.NAME]`` reader of `infer.config.SECTION_READERS`: name → `Prior` (only the key
+    ``prior``; whether NAME is a derived quantity of the theory is checked when the posterior is built)."""
+    import re
+    from infer import validate
+    from infer.parameters import _prior
+    if not isinstance(table, dict):
+        raise UserError(f"{path}: [derived] must hold [derived.NAME] tables")
+    sampled = {p.name for p in parameters}
+    out = {}
+    for name, spec in table.items():
+        if not (isinstance(spec, dict) and re.fullmatch(r"[A-Za-z][A-Za-z0-9_]*", name)):
+            raise UserError(f"{path}: [derived.{name}] must be a table with a 'prior'")
+        validate.check_keys(path, f"derived.{name}", spec, {"prior"})
+        if "prior" not in spec:
+            raise UserError(f"{path}: [derived.{name}] needs a 'prior'")
+        if name in sampled:
+            raise UserError(f"{path}: [derived.{name}]: {name} is a parameter of the run; put its prior "
+                            f"in [parameters.{name}]")
+        out[name] = _prior(path, name, spec["prior"], section="derived")
+    return out
