@@ -134,31 +134,47 @@ def summarize_chain(chain, out=None, burn=None, no_model=False) -> int:
 def cmd_simulate(args) -> int:
     from infer import data as datasets
     from infer import forecast as mock
+    from infer.forecast import multifreq
     from infer.theory import theory_at_point
-    exp, fiducial, options = mock.read_experiment(args.spec)
+    if multifreq.is_multifrequency(args.spec):
+        spec = multifreq.read_spec(args.spec)
+        exp_name, ell_max, fiducial, options = spec.name, spec.ell_max, spec.fiducial, dict(spec.mock,
+                                                                                          theory=spec.theory)
+    else:
+        exp, fiducial, options = mock.read_experiment(args.spec)
+        exp_name, ell_max = exp.name, exp.ell_max
     if args.out is None and options.get("output") is None:
         raise UserError(f"{args.spec}: no output file: give OUT on the command line or [mock] output")
     out = Path(args.out if args.out is not None else options["output"]).resolve()
     if out.exists() and not args.replace:
         raise UserError(f"{out} already exists (pass --replace to overwrite it)")
     if out.exists():
-        from infer.data.hdf5 import FORMAT
-        paths.replaceable(out, FORMAT, "dataset", "overwrites")
+        if out.suffix.lower() in datasets.SACC_SUFFIXES:
+            datasets.saccwrite.replaceable(out)
+        else:
+            from infer.data.hdf5 import FORMAT
+            paths.replaceable(out, FORMAT, "dataset", "overwrites")
     paths.file_folder(out)
     datasets.check_target(out, overwrite=args.replace)
-    theory, inputs = theory_at_point(options["theory"], fiducial, exp.ell_max + 2, where=f"{args.spec}: [theory]",
+    theory, inputs = theory_at_point(options["theory"], fiducial, ell_max + 2, where=f"{args.spec}: [theory]",
                                      point_where=f"{args.spec}: [fiducial]")
+    if multifreq.is_multifrequency(args.spec):
+        multifreq.check_sky(spec)                   # every [sky] name known, before the theory call
     spectra = theory.compute(inputs)
     seed = args.seed if args.seed is not None else options.get("seed")
     realise = options.get("realise", True) and not args.no_noise
-    bp = mock.simulate(exp, spectra, seed=seed, realise=realise)
-    desc = options.get("description") or f"Mock band powers of the fictional experiment '{exp.name}'"
+    if multifreq.is_multifrequency(args.spec):
+        bp = multifreq.simulate(spec, spectra, seed=seed, realise=realise)
+    else:
+        bp = mock.simulate(exp, spectra, seed=seed, realise=realise)
+    desc = options.get("description") or f"Mock band powers of the fictional experiment '{exp_name}'"
     desc += (f" [made by `infer simulate {Path(args.spec).name}`; fiducial {json.dumps(fiducial)}; "
              f"theory {json.dumps(theory.describe(), default=str)}; noise realisation: "
              f"{'seed ' + str(seed) if realise else 'none'}]")
     datasets.write(bp, str(out), overwrite=args.replace, description=desc)
     print(f"wrote {out}: {len(bp.value)} bands ({'/'.join(bp.spectra)}), ℓ {int(bp.ell_lo.min())}–"
-          f"{int(bp.ell_hi.max())}, experiment '{exp.name}'")
+          f"{int(bp.ell_hi.max())}, experiment '{exp_name}'" +
+          (f", channels {', '.join(c.name for c in bp.channels)}" if len(bp.channels) > 1 else ""))
     return EXIT_OK
 
 

@@ -272,6 +272,11 @@ def resume(chain, config_path, override, extra_changes, clock, summary_check=Non
         problem = problem_for(cfg)
         check_dataset(state, problem.model.posterior.data, cfg, chain)
         check_blobs(state.derived_names, problem, chain)
+        if tuple(state.blob_names) != tuple(problem.model.blob_names):
+            raise UserError(f"refusing to resume {chain}: its exact calls record "
+                            f"{state.blob_names[0] if state.blob_names else 'nothing'}… where this version "
+                            f"records {problem.model.blob_names[0]}… (an earlier version of infer stored model "
+                            "band powers; this one stores the binned theory); start a new chain")
         if state.report is not None and state.report.get("converged") and not changes:
             log.info("%s has converged already (weight ESS %.0f, k̂ %.2f); nothing to do", chain,
                      state.report["ess"], state.report["khat"])

@@ -370,7 +370,7 @@ def test_unreadable_files(tmp_path):
         dataset.load(junk)
     assert str(junk) in str(err.value)
     with pytest.raises(UserError, match="unknown dataset suffix"):
-        dataset.load(tmp_path / "data.fits")
+        dataset.load(tmp_path / "data.xyz")
     (tmp_path / "dir.h5").mkdir()
     with pytest.raises(UserError, match="directory"):
         dataset.load(tmp_path / "dir.h5")

@@ -3,8 +3,9 @@
 Keys (each checked here for type and range, one line naming the run file and the dotted key):
 
 * ``file`` — our HDF5 file (``.h5``/``.hdf5``), a plain-text table (``.txt``/``.dat``/``.csv``, then
-  also ``covariance`` and ``units``);
-* ``units`` — declared units of a plain-text table (one of `infer.data.bandpowers.UNITS`);
+  also ``covariance`` and ``units``), or a SACC file (``.fits``/``.fit``/``.sacc``; then also ``units``
+  unless the file records them);
+* ``units`` — declared units of a plain-text table or a SACC file (one of `infer.data.bandpowers.UNITS`);
 * ``spectra`` — a subset of TT/TE/EE/BB;
 * ``pairs`` — frequency pairs to keep, spelled ``"90x150"`` (channel names joined by ``x``; for TE the T
   map's channel first);

@@ -22,7 +22,6 @@ chain-style blob ``[ln L, derived…, χ²]`` of each exact draw is rebuilt from
 from __future__ import annotations
 
 import numpy as np
-from scipy import linalg
 
 from infer.errors import UserError
 

@@ -129,18 +129,40 @@ class BandPowerLikelihood:
         return self.nuisance.apply_many(B, self._values(nuisance, len(B)))
 
     def _columns(self, B, v):
-        """Whitened columns U (n, N, K) of the analytic parameters, cached while they cannot change."""
-        names = self.marginal.names
-        beams = any(n in self.nuisance.instrument.beams for n in names)
-        key = None
-        if len(B) == 1 and not beams:
-            key = tuple(np.asarray(v[k]).tobytes() for k in sorted(v) if k not in names)
-            if self._marg_cache[0] == key:
-                return self._marg_cache[1]
-        U = whiten_columns(self._chol, self.nuisance.columns(B, v, names))
-        if key is not None:
-            self._marg_cache = (key, U)
-        return U
+        """Whitened columns U = L⁻¹T (n, N, K) of the analytic parameters.
+
+        Foreground amplitudes: T = g ⊙ t with g the gains (calibration × polarisation efficiency), constant
+        on each (kind, pair) block, and t the beam-scaled templates; so U = Σ_blocks g_block · L⁻¹(t|block),
+        whose block columns are whitened once for each value of the shape, SED and beam parameters — the
+        per-point cost is then a sum, not a triangular solve, even with sampled calibrations."""
+        nu, names = self.nuisance, self.marginal.names
+        if any(n in nu.instrument.beams for n in names):          # columns depend on the theory B
+            return whiten_columns(self._chol, nu.columns(B, v, names))
+        shape_names = [k for k in (*nu.ranges, *nu.instrument.beams) if k in v]
+        if any(np.any(v[k] != v[k][0]) for k in shape_names):     # shapes differ between rows
+            return whiten_columns(self._chol, nu.columns(B, v, names))
+        key = tuple(float(v[k][0]) for k in shape_names)
+        if self._marg_cache[0] != key:
+            from infer.model.instrument import CALIBRATION
+            ones = set(nu.instrument.cal) | set(nu.instrument.poleff) | {CALIBRATION}
+            v1 = type(v)({k: (np.ones(1) if k in ones else np.asarray(v[k][:1])) for k in v})
+            v1.given = getattr(v, "given", frozenset(v))
+            t = nu.columns(np.atleast_2d(B)[:1], v1, names)[0]                        # (N, K)
+            blocks = self._blocks()
+            masked = np.stack([t * np.isin(np.arange(self.n), rows)[:, None] for rows in blocks])
+            U0 = np.moveaxis(whiten_columns(self._chol, np.moveaxis(masked, 0, 2).reshape(1, self.n, -1))[0]
+                             .reshape(self.n, len(names), len(blocks)), 2, 0)        # (blocks, N, K)
+            self._marg_cache = (key, U0)
+        U0 = self._marg_cache[1]
+        g = nu.instrument.gains(v, getattr(v, "given", None))[:, [rows[0] for rows in self._blocks()]]
+        return np.einsum("nb,bik->nik", g, U0)
+
+    def _blocks(self):
+        """Row indices of each (kind, pair) block (the gains are constant on each)."""
+        if not hasattr(self, "_block_rows"):
+            key = np.char.add(np.asarray(self.data.kind).astype(str), np.asarray(self.data.pair).astype(str))
+            self._block_rows = [np.flatnonzero(key == k) for k in dict.fromkeys(key.tolist())]
+        return self._block_rows
 
     def _residuals(self, B, nuisance):
         """Whitened residuals r (n, N) at the analytic parameters' prior means, and their columns U."""

@@ -237,7 +237,8 @@ def summarize_run(state, cfg, chain, out=None, burn: int | None = None, no_model
             model, fit = post.fit_quality(s.position[best_index(s, choice.burn)])
             dataset = post.data
             s.meta.update({"chi2_best": fit.chi2, "n_bins": fit.n_bins, "dof": fit.dof, "pte_best": fit.pte})
-            s.meta.update(fit_meta(post, fit, kept_positions(s, choice.burn)))
+            s.meta.update(fit_meta(post, fit, kept_positions(s, choice.burn),
+                                   best=s.position[best_index(s, choice.burn)]))
         except UserError as err:
             log.warning("no data-vs-model figure: %s", err)
     paths = write_summary(s, outdir, choice, dataset=dataset, best_model=model, targets=cfg.stopping,
@@ -274,7 +275,8 @@ def summarize_engine_run(state, cfg, chain, out=None, no_model: bool = False) ->
             post = Posterior(cfg)
             model, fit = post.fit_quality(ws.position[ws.best_index()])
             dataset = post.data
-            ws.meta.update(fit_meta(post, fit, ws.position, np.exp(ws.log_weight - np.max(ws.log_weight))))
+            ws.meta.update(fit_meta(post, fit, ws.position, np.exp(ws.log_weight - np.max(ws.log_weight)),
+                                    best=ws.position[ws.best_index()]))
         except UserError as err:
             log.warning("no data-vs-model figure: %s", err)
     paths = write_weighted_summary(ws, info, outdir, dataset=dataset, fit=fit, best_model=model,
@@ -301,14 +303,19 @@ def kept_positions(s, burn: int) -> np.ndarray:
     return pos.reshape(-1, pos.shape[-1])
 
 
-def fit_meta(post, fit, positions, weights=None, draws: int | None = None) -> dict:
-    """Summary lines of the fit per (kind, pair) block and, for a cheap theory, the posterior-predictive
-    p-value (`infer.analysis.ppc`) from ``draws`` posterior draws (default `PPC_DRAWS` for the template
-    theory, none otherwise)."""
+def fit_meta(post, fit, positions, weights=None, draws: int | None = None, best=None) -> dict:
+    """Summary lines of the fit per (kind, pair) block, the conditional best fit of the analytically
+    marginalised parameters at ``best`` (`infer.model.marginal`), and, for a cheap theory, the
+    posterior-predictive p-value (`infer.analysis.ppc`) from ``draws`` posterior draws (default
+    `PPC_DRAWS` for the template theory, none otherwise)."""
     from infer.analysis.ppc import predictive_check, select_draws
     from infer.model.fitquality import pte
     meta = {"fit_blocks": [f"{lab} {c2:.1f}/{n} (PTE {pte(c2, n):.3f})" for lab, (c2, n) in
                            (getattr(fit, "by_pair", None) or fit.by_kind).items()]}
+    if best is not None and post.analytic_names:
+        from infer.report.rounding import format_value
+        cond = post.analytic_fit(np.asarray(best, float))
+        meta["analytic"] = "; ".join(f"`{n}` {format_value(a, sd, tex=False)}" for n, (a, sd) in cond.items())
     if draws is None:
         draws = PPC_DRAWS if post.cfg.theory.get("code") == "templates" else 0
     if draws > 0:
@@ -339,11 +346,48 @@ def best_fit_line(cfg, chain) -> str | None:
         return None
 
 
+def summarize_reweighted_run(state, cfg, chain, out=None, no_model: bool = False) -> str:
+    """Summarise a reweighted chain (`infer.store.reweighted.Reweighted`, from ``infer reweight``) with its
+    weights; returns the report text. The default output folder is beside the file (never the parent's)."""
+    outdir, _ = check_outputs(Path(out).resolve() if out else Path(str(Path(chain).resolve())[:-3]),
+                              bandpowers=not no_model, files=WEIGHTED_FILES)
+    ws = state.weighted_sample({"run": state.provenance.get("run_name"),
+                                "experiment": state.provenance.get("experiment")})
+    rep, parent = state.report, state.parent
+    info = {"reweighted": True, "parent": parent, "change": state.change, "exact_calls": rep["exact_calls"],
+            "khat_max": rep["khat_max"], "converged": bool(parent.get("converged")),
+            "missing": [f"parent chain: {m}" for m in parent.get("missing", [])]}
+    dataset = model = fit = None
+    if not no_model:
+        try:
+            from infer.model.posterior import Posterior
+            post = Posterior(cfg)
+            model, fit = post.fit_quality(ws.position[ws.best_index()])
+            dataset = post.data
+            ws.meta.update(fit_meta(post, fit, ws.position, np.exp(ws.log_weight - np.max(ws.log_weight))))
+        except UserError as err:
+            log.warning("no data-vs-model figure: %s", err)
+    paths = write_weighted_summary(ws, info, outdir, dataset=dataset, fit=fit, best_model=model,
+                                   targets=cfg.stopping)
+    lines = [f"summary of {chain} (reweighted from {parent['path']}: weight ESS {rep['ess']:.0f} of "
+             f"{rep['draws']} draws, k̂ {rep['khat']:.2f})"]
+    lines += [f"  {kind:<12} {path}" for kind, path in paths.items()]
+    return "\n".join(lines)
+
+
 def summarize_file(chain: str, out=None, burn: int | None = None, no_model: bool = False) -> str:
-    """``infer summarize``: the summary of the chain file ``chain``, of either engine; returns the text."""
+    """``infer summarize``: the summary of the chain file ``chain``, of either engine, or of a reweighted
+    chain; returns the text."""
     from infer.config import stored as stored_config
     from infer.store.chainfile import ChainStore
     from infer.store.enginefile import EngineFile, engine_of
+    from infer.store.reweighted import ReweightedFile, is_reweighted
+    if is_reweighted(chain):
+        if burn is not None:
+            raise UserError("--burn applies to ensemble chains; a reweighted sample was cut when it was made "
+                            "(`infer reweight --burn`)")
+        state = ReweightedFile(chain).read()
+        return summarize_reweighted_run(state, stored_config(state), chain, out, no_model)
     if engine_of(chain) == "surrogate":
         if burn is not None:
             raise UserError("--burn applies to ensemble chains; a surrogate-engine sample has no burn-in")

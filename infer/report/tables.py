@@ -84,6 +84,10 @@ def _meta_lines(meta: dict) -> list[str]:
     if meta.get("fit_blocks"):
         out.append("- χ² per spectrum and pair (own covariance block; PTE for the block's band count, "
                    "indicative: blocks share the parameters): " + "; ".join(meta["fit_blocks"]) + ".")
+    if meta.get("analytic"):
+        out.append("- Marginalised analytically (Bridle et al. 2002, MNRAS 335, 1193; not sampled): conditional "
+                   "best fit ± conditional sd at the best draw, the other parameters held there: "
+                   f"{meta['analytic']}.")
     if meta.get("ppc"):
         out.append(f"- Posterior-predictive check (Gelman, Meng & Stern 1996): {meta['ppc']}.")
     if meta.get("converged") is not None:
@@ -313,7 +317,8 @@ def _weighted_verdict(info: dict, engine: dict | None) -> tuple[bool, list[str]]
 def _weighted_preamble(info: dict, engine: dict | None, latex: bool = False) -> list[str]:
     """Sentences saying how the weighted sample was made and what its diagnostics are (Markdown or, for
     ``latex``, the same sentences for comment lines)."""
-    et = float(info["ess_target"])
+    if engine is not None and engine.get("reweighted"):
+        return _reweighted_preamble(info, engine, latex)
     lines = [f"Sample: {info['draws_used']:,} exact posterior evaluations at draws of a proposal, each "
              "weighted by its importance weight (exact posterior over proposal density) so that every "
              "number below is an estimate under the exact posterior (the surrogate engine)."
@@ -350,6 +355,29 @@ def _weighted_preamble(info: dict, engine: dict | None, latex: bool = False) -> 
                          f"{_num(ch.get('rhat_max'), '.4f')}, smallest ESS = {_num(ch.get('ess_min'), '.0f')} "
                          f"after {_num(ch.get('steps'), '.0f')} steps; it {state}. These qualify the proposal "
                          "only: the weights correct what it misses, and k̂ says whether they can.")
+    return lines + _weights_and_verdict(info, engine, latex)
+
+
+def _reweighted_preamble(info: dict, engine: dict, latex: bool = False) -> list[str]:
+    """How a reweighted chain (``infer reweight``) was made, then the same weight and verdict sentences."""
+    parent, change = engine["parent"], engine["change"]
+    what = "; ".join(filter(None, [change.get("target_path") and (
+        ("the likelihood of the dataset of " if change["kind"].startswith("add") else "the posterior of ")
+        + change["target_path"]), *change.get("prior_text", [])]))
+    lines = [f"Sample: {info['draws_used']:,} draws of the chain {parent['path']} (run {parent.get('run_name')}; "
+             f"{parent['rule']}), importance-reweighted to {what}: each weight is the chain's weight times "
+             "p_target/p_chain at the draw, so every number below is an estimate under the changed posterior "
+             f"({int(engine.get('exact_calls', 0)):,} exact calls of the target)."
+             + (f" {info['draws'] - info['draws_used']:,} draws have zero weight under the target."
+                if info["draws"] > info["draws_used"] else "")]
+    lines.append("A reweighting cannot reach beyond the chain: where the target is much narrower than the chain or "
+                 "lies in its tail the weights degenerate, which the effective sample size and k̂ below measure.")
+    return lines + _weights_and_verdict(info, engine, latex)
+
+
+def _weights_and_verdict(info: dict, engine: dict | None, latex: bool = False) -> list[str]:
+    et = float(info["ess_target"])
+    lines = []
     lines.append(f"Weights: Kish effective sample size {info['ess']:,.0f} of {info['draws_used']:,} draws "
                  f"(target ≥ {et:g}); Pareto k̂ = {info['khat']:.2f} (estimates are reliable for "
                  f"k̂ < {info['khat_max']:g}, and for S draws below min(1 − 1/log₁₀ S, 0.7) = "
@@ -367,14 +395,17 @@ def _weighted_preamble(info: dict, engine: dict | None, latex: bool = False) -> 
                  f"ln P = {best['log_post']:.3f}, −2 ln L = {_num(-2 * best['log_like'], '.2f')}); not an "
                  "optimised maximum.")
     met, missing = _weighted_verdict(info, engine)
-    rule = ("the engine's stopping rule: surrogate chain converged, weight ESS ≥ target, k̂ < "
+    reweighted = engine is not None and engine.get("reweighted")
+    rule = (f"the chain's stopping rule, weight ESS ≥ target, k̂ < {info['khat_max']:g}" if reweighted else
+            "the engine's stopping rule: surrogate chain converged, weight ESS ≥ target, k̂ < "
             f"{info['khat_max']:g}" if engine is not None else
             "judged on the weights alone: the engine's record, with its surrogate chain, was not given")
     if met:
         verdict = f"**Converged** ({rule})."
     else:
         verdict = (f"**Not converged** ({rule}): " + "; ".join(missing) + ". Do not quote these numbers yet; "
-                   "resuming the run adds correction rounds.")
+                   + ("a longer chain gives more draws to reweight, or sample the target directly." if reweighted
+                      else "resuming the run adds correction rounds."))
     if info.get("low_ess"):
         verdict += (f" {len(info['low_ess'])} quantit{'y has' if len(info['low_ess']) == 1 else 'ies have'} "
                     f"fewer effective draws for the mean than {et:g} ({', '.join(info['low_ess'])}, marked "
