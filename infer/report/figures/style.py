@@ -32,6 +32,8 @@ MIST = "#dcefed"          # 1-D 68 % fill
 ACCENT = "#d1603d"        # best sample, model
 SAND = "#f1e7d3"          # burn-in shading
 GRID = "#e4e7eb"
+EMBER = "#b34a2a"          # profile likelihoods
+PROFILE_FILL = "#f3d9cc"   # profile intervals
 ENSEMBLE_COLOURS = ("#0f5c66", "#d1603d", "#5a4c9a", "#7d8c22", "#b0406c", "#2d6fb0", "#9b6a22", "#4b5563")
 
 STYLE = {

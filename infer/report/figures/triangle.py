@@ -186,3 +186,8 @@ def _pair_panel(ax, x, y, rx, ry, best, w=None):
     if best is not None:
         ax.plot([best[0]], [best[1]], marker="D", ms=4, color=ACCENT, mec="white", mew=0.5, zorder=5)
     ax.set_ylim(ry[0], ry[1])
+
+
+#: Public names of the panel painters (used by the paper figures, `infer.report.figures.paper`).
+diag_panel = _diag_panel
+pair_panel = _pair_panel
