@@ -169,7 +169,10 @@ class BandPowerLikelihood:
         B = np.atleast_2d(B)
         v = self._values(nuisance, len(B))
         m = self.nuisance.apply_many(B, v)
-        r = linalg.solve_triangular(self._chol, (self._value[None, :] - m).T, lower=True, check_finite=False).T
+        if len(m) == 1:
+            r = self._trsv(self._chol, self._value - m[0], lower=1)[None, :]
+        else:
+            r = linalg.solve_triangular(self._chol, (self._value[None, :] - m).T, lower=True, check_finite=False).T
         return r, (self._columns(B, v) if self.marginal is not None else None)
 
     def loglike_many(self, B: np.ndarray, nuisance: dict | None = None) -> tuple[np.ndarray, np.ndarray]:

@@ -151,7 +151,8 @@ class NuisanceModel:
             out = Values({k: np.full(n, v) for k, v in self.defaults.items()})
         for k, v in given.items():
             if k in out:
-                out[k] = np.broadcast_to(np.asarray(v, float), (n,))
+                out[k] = np.full(n, float(v)) if isinstance(v, (float, int)) else \
+                    np.broadcast_to(np.asarray(v, float), (n,))
         out.given = frozenset(given) & set(self.defaults)
         return out
 
