@@ -272,7 +272,9 @@ def test_writer_refuses_beam_modes_and_replace_guard(tmp_path):
         saccwrite.replaceable(junk)
 
 
-def test_long_type_names_and_a_beam_warning(tmp_path, caplog):
+def test_long_type_names_and_a_beam_warning(tmp_path, caplog, monkeypatch):
+    import logging
+    monkeypatch.setattr(logging.getLogger("infer"), "propagate", True)    # an earlier CLI test may have cut it
     s = sacc.Sacc()
     for spin in (0, 2):
         beam = np.exp(-GRID * (GRID + 1) * 1e-6) if spin == 0 else np.ones(GRID.size)

@@ -27,7 +27,7 @@ from scipy import linalg
 
 from infer.model.fitquality import FitQuality, fit_quality, pte as _pte  # noqa: F401 - FitQuality re-exported
 from infer.model.marginal import AnalyticMarginal, whiten_columns
-from infer.model.nuisance import NUISANCE, NuisanceModel  # noqa: F401 - NUISANCE is re-exported
+from infer.model.nuisance import NUISANCE, NuisanceModel, Values  # noqa: F401 - NUISANCE is re-exported
 from infer.theory.base import Spectra
 
 
@@ -145,7 +145,7 @@ class BandPowerLikelihood:
         if self._marg_cache[0] != key:
             from infer.model.instrument import CALIBRATION
             ones = set(nu.instrument.cal) | set(nu.instrument.poleff) | {CALIBRATION}
-            v1 = type(v)({k: (np.ones(1) if k in ones else np.asarray(v[k][:1])) for k in v})
+            v1 = Values({k: (np.ones(1) if k in ones else np.asarray(v[k][:1])) for k in v})
             v1.given = getattr(v, "given", frozenset(v))
             t = nu.columns(np.atleast_2d(B)[:1], v1, names)[0]                        # (N, K)
             blocks = self._blocks()
