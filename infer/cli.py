@@ -183,6 +183,9 @@ def cmd_check(args) -> int:
     from infer.model.posterior import Posterior
     from infer.model.timing import time_posterior
     cfg = config.load(args.config)
+    if args.presets:                        # checked before the first theory call
+        from infer.model.accuracy import check_request
+        check_request(cfg, args.preset_points, args.preset_reference)
     t = time.perf_counter()
     post = Posterior(cfg)
     setup = time.perf_counter() - t
@@ -200,6 +203,10 @@ def cmd_check(args) -> int:
     print(f"theory     {t['theory_s']:.3f} s per call (median of {t['calls']}, threads {t['threads']})")
     print(f"likelihood {t['likelihood_s'] * 1e3:.3f} ms per call = {100 * t['fraction']:.3f} % of a theory call "
           "(goal ≤ 1 %)")
+    if args.presets:
+        from infer.model.accuracy import preset_check
+        result = preset_check(cfg, points=args.preset_points, reference=args.preset_reference, post=post)
+        print("\n".join(result.lines()))
     return EXIT_OK
 
 
@@ -315,6 +322,13 @@ def build_parser() -> argparse.ArgumentParser:
     c = sub.add_parser("check", help="validate a run file and time the theory and likelihood")
     c.add_argument("config")
     c.add_argument("--calls", type=_integer(1, "theory calls to time"), default=3, help="theory calls to time")
+    c.add_argument("--presets", action="store_true",
+                   help="also compare the run's accuracy preset with a reference preset: Δχ² at the guess and "
+                        "Sobol points around it, 2 theory calls per point (infer.model.accuracy)")
+    c.add_argument("--preset-reference", default="high", metavar="PRESET",
+                   help="reference preset of --presets (default: high)")
+    c.add_argument("--preset-points", type=_integer(1, "points of the preset check"), default=3,
+                   help="points of --presets, the guess included (default 3)")
     c.set_defaults(func=cmd_check)
 
     v = sub.add_parser("salvage", help="copy the intact part of a damaged chain into a new file")

@@ -18,3 +18,21 @@ def test_other_derived_quantities_are_refused_in_one_line():
     msg = str(err.value)
     assert "\n" not in msg and msg.startswith("refusing to resume old.h5") and "new: r_drag" in msg
     check_blobs(("H0", "sigma_8", "r_drag", "chi2"), now, "same.h5")       # equal sets resume
+
+
+def test_a_chain_with_the_biased_snooker_move_is_refused(write_config, capsys):
+    # A chain whose DE-snooker steps came from infer < 0.3 (emcee's DESnookerMove, see
+    # infer/sampling/moves.py) is refused on resume in one line; the same chain with the fixed move resumes.
+    import h5py
+    from infer.cli import main
+    cfg, chain = write_config(steps=20, checkpoint_steps=10, check_every=10)
+    assert main(["--quiet", "run", str(cfg)]) == 0
+    with h5py.File(chain, "r+") as f:
+        f.attrs["infer_version"] = b"0.2.0"
+    capsys.readouterr()
+    assert main(["--quiet", "resume", str(chain), "--steps", "30"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "DE-snooker" in err and "0.2.0" in err
+    with h5py.File(chain, "r+") as f:
+        f.attrs["infer_version"] = b"0.3.0"
+    assert main(["--quiet", "resume", str(chain), "--steps", "30"]) == 0

@@ -1,11 +1,20 @@
 """How the ensembles move: emcee's proposals, and all ensembles' sub-steps in one evaluation call each.
 
-Proposals are emcee's (Foreman-Mackey et al. 2013, PASP 125, 306): by default a mixture of
-differential-evolution moves (ter Braak 2006, Stat. Comput. 16, 239; weight 0.8) and DE-snooker moves
-(ter Braak & Vrugt 2008, Stat. Comput. 18, 435; weight 0.2), or the affine-invariant stretch move
-(Goodman & Weare 2010, CAMCoS 5, 65). These update an ensemble in sub-ensembles, each against the
-rest: DE and stretch in two halves (two sequential calls of W/2 points per step), DE-snooker in four
-quarters (emcee's ``DESnookerMove`` sets ``nsplits = 4``: four calls of W/4 points).
+Proposals run inside emcee (Foreman-Mackey et al. 2013, PASP 125, 306): by default a mixture of
+differential-evolution moves (ter Braak 2006, Stat. Comput. 16, 239; weight 0.8, emcee's ``DEMove``) and
+DE-snooker moves (ter Braak & Vrugt 2008, Stat. Comput. 18, 435; weight 0.2, our `Snooker`), or the
+affine-invariant stretch move (Goodman & Weare 2010, CAMCoS 5, 65). These update an ensemble in
+sub-ensembles, each against the rest: DE and stretch in two halves (two sequential calls of W/2 points
+per step), DE-snooker in four quarters (four calls of W/4 points).
+
+The snooker move is our own because emcee 3.1's ``DESnookerMove`` does not leave the target invariant:
+it projects on δ/√|δ| instead of the unit vector δ/|δ| (so the step along the line depends on where the
+walker sits on it) and applies half the Jacobian factor (|q − z|/|s − z|)^((d−1)/2) instead of
+^(d−1). Measured on a 4-D Gaussian (32 walkers, 6000 steps, 4 seeds): its marginal sds came out
+0.57–0.64 of the exact ones alone and 0.986–0.992 in the 0.8/0.2 mixture, against 0.995–1.003 for
+`Snooker` alone and in the mixture (test: `tests/test_sampler.py`). Chains written with the old mixture
+(infer < 0.3) are therefore narrowed by about 1 % in sd; the surrogate engine, whose proposal is such a
+chain, inherited about 3 %.
 
 `LockStep` advances K ensembles by one step each so that the r-th sub-step of every ensemble is one
 evaluation call: a step costs max over the ensembles of their sub-steps in rounds of theory calls (2 for
@@ -36,13 +45,41 @@ import numpy as np
 from infer.sampling.state import BlobLayout, StepState
 
 
+class Snooker(emcee.moves.RedBlueMove):
+    """The DE-snooker move of ter Braak & Vrugt (2008, Stat. Comput. 18, 435, §3): for a walker at s and
+    three other walkers z, z₁, z₂ of the complementary sub-ensembles, with e = (s − z)/|s − z|,
+
+        q = s + γ e · (e·(z₁ − z₂)),      accepted with min(1, p(q)/p(s) · (|q − z|/|s − z|)^(d−1)),
+
+    γ = 1.7 (their choice), four sub-ensembles (as emcee's DE-snooker)."""
+
+    def __init__(self, gammas: float = 1.7, **kwargs):
+        self.gammas = gammas
+        kwargs["nsplits"] = 4
+        super().__init__(**kwargs)
+
+    def get_proposal(self, s, c, random):
+        c = np.concatenate(c, axis=0)
+        ns, nc, ndim = len(s), len(c), s.shape[1]
+        q = np.empty((ns, ndim), dtype=np.float64)
+        log_jac = np.empty(ns, dtype=np.float64)
+        for i in range(ns):
+            z, z1, z2 = c[random.choice(nc, size=3, replace=False)]
+            delta = s[i] - z
+            norm = np.linalg.norm(delta)
+            e = delta / norm
+            q[i] = s[i] + e * self.gammas * (np.dot(e, z1) - np.dot(e, z2))
+            log_jac[i] = np.log(np.linalg.norm(q[i] - z)) - np.log(norm)
+        return q, (ndim - 1.0) * log_jac
+
+
 def make_moves(name: str):
     """emcee moves for ``[sampling] moves``: "stretch", "de", or the default DE/DE-snooker mixture."""
     if name == "stretch":
         return emcee.moves.StretchMove()
     if name == "de":
         return emcee.moves.DEMove()
-    return [(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)]
+    return [(emcee.moves.DEMove(), 0.8), (Snooker(), 0.2)]
 
 
 class Abandoned(BaseException):
