@@ -208,6 +208,26 @@ class NuisanceModel:
         return np.stack([np.broadcast_to(cols[k], (n, self.layout.n)) for k in names], axis=2)
 
 
+_TEX = {"calibration": "c", LEGACY_POISSON: r"A^{TT}_{\rm PS}", "ps_amp": r"A_{\rm PS}", "ps_index": r"\alpha_{\rm PS}",
+        "cib_amp": r"A_{\rm CIB}", "cib_ell_index": r"n_{\rm CIB}", "cib_beta": r"\beta_{\rm CIB}",
+        "cib_temp": r"T_{\rm CIB}", "tsz_amp": r"A_{\rm tSZ}", "ksz_amp": r"A_{\rm kSZ}",
+        "dust_ell_index": r"\alpha_{\rm d}", "dust_beta": r"\beta_{\rm d}", "dust_temp": r"T_{\rm d}"}
+
+
+def tex_label(name: str) -> str | None:
+    """A LaTeX label for a nuisance parameter's name (None for names that are not nuisance names)."""
+    if name in _TEX:
+        return _TEX[name]
+    for prefix, fmt in (("cal_", r"g_{{{}}}"), ("poleff_", r"\epsilon_{{{}}}"), ("beam_", r"\beta^{{\rm beam}}_{{{}}}")):
+        if name.startswith(prefix):
+            return fmt.format(name[len(prefix):].replace("_", "."))
+    if name.startswith("ps_") and "x" in name:
+        return r"A^{{\rm PS}}_{{{}}}".format(name[3:].replace("x", r"\times"))
+    if name.startswith("dust_") and name.endswith("_amp"):
+        return r"A^{{{}}}_{{\rm dust}}".format(name[5:-4].upper())
+    return None
+
+
 class Values(dict):
     """Parameter name → values (n,), with ``given``: the names given rather than defaulted."""
 

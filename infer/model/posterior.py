@@ -167,7 +167,10 @@ class Posterior:
 
     def labels(self) -> dict[str, str]:
         """LaTeX label of every parameter of the run file (``tex``) and every derived quantity."""
-        return {p.name: p.tex for p in self.cfg.parameters} | self.derived_tex
+        from infer.model.nuisance import tex_label
+        own = {p.name: (tex_label(p.name) or p.tex) if p.tex == p.name and p.name in self.like.nuisance.defaults
+               else p.tex for p in self.cfg.parameters}
+        return own | self.derived_tex
 
     def describe(self) -> dict:
         return {"theory": self.theory.describe(), "n_bins": self.like.n, "spectra": list(self.like.kinds)}
