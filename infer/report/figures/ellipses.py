@@ -23,6 +23,7 @@ from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator
 from scipy import stats
 
+from infer.report.figures.triangle import label_panel
 from infer.report.figures.style import ACCENT, DEEP, INK, MIST, SHALLOW, STYLE, new_figure, save, smooth
 from infer.report.figures.triangle import density_2d
 from infer.report.figures.style import label as tex_label
@@ -139,19 +140,7 @@ def ellipses_figure(names, centre, covariance, tex: dict | None = None, title: s
                     ax.set_ylim(mu[i] - SPAN * sig[i], mu[i] + SPAN * sig[i])
                     ax.yaxis.set_major_locator(MaxNLocator(4, prune="both"))
                 ax.xaxis.set_major_locator(MaxNLocator(4, prune="both"))
-                if i == n - 1:
-                    ax.set_xlabel(labels[j])
-                    for t in ax.get_xticklabels():
-                        t.set_rotation(40)
-                        t.set_ha("right")
-                else:
-                    ax.tick_params(labelbottom=False)
-                    ax.xaxis.get_offset_text().set_visible(False)
-                if j == 0 and i != 0:
-                    ax.set_ylabel(labels[i])
-                elif i != j:
-                    ax.tick_params(labelleft=False)
-                    ax.yaxis.get_offset_text().set_visible(False)
+                label_panel(ax, i, j, n, labels)
         fig.text(left, 1 - 0.25 / height, title, ha="left", va="top", fontsize=fs, color=INK, linespacing=1.3)
         handles = [Patch(facecolor=DEEP, edgecolor=INK, label=f"{100 * MASSES[0]:.1f} % joint region (1σ)"),
                    Patch(facecolor=SHALLOW, edgecolor=DEEP, label=f"{100 * MASSES[1]:.1f} % joint region (2σ)"),

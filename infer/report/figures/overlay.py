@@ -19,6 +19,7 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import MaxNLocator
 
 from infer.analysis.weighted import WeightedSample
+from infer.report.figures.triangle import label_panel
 from infer.report.figures.style import (ENSEMBLE_COLOURS, INK, STYLE, new_figure, plot_range, save, smooth,
                                         weighted_bins)
 from infer.report.figures.style import label as tex_label
@@ -98,19 +99,7 @@ def overlay_figure(runs, names) -> Figure:
                 else:
                     ax.set_ylim(ranges[i][0], ranges[i][1])
                     ax.yaxis.set_major_locator(MaxNLocator(4, prune="both"))
-                if i == n - 1:
-                    ax.set_xlabel(labels[j])
-                    for t in ax.get_xticklabels():
-                        t.set_rotation(40)
-                        t.set_ha("right")
-                else:
-                    ax.tick_params(labelbottom=False)
-                    ax.xaxis.get_offset_text().set_visible(False)
-                if j == 0 and i != 0:
-                    ax.set_ylabel(labels[i])
-                elif i != j:
-                    ax.tick_params(labelleft=False)
-                    ax.yaxis.get_offset_text().set_visible(False)
+                label_panel(ax, i, j, n, labels)
         fig.text(left, 1 - 0.25 / height, title, ha="left", va="top", fontsize=fs, color=INK, linespacing=1.3)
         handles = [Line2D([], [], color=COLOURS[k % len(COLOURS)], ls=DASHES[k % len(DASHES)], lw=1.5, label=lab)
                    for k, (lab, _) in enumerate(runs)]

@@ -143,7 +143,7 @@ def columns_of(sample, names):
 # -- the figure --------------------------------------------------------------------------------------------
 def paper_figure(sample, names, labels, width: str = "single"):
     """A triangle of ``names`` (one name: its marginal) labelled ``labels`` (mathtext), ``width`` wide."""
-    from infer.report.figures.triangle import diag_panel, pair_panel
+    from infer.report.figures.triangle import diag_panel, label_panel, pair_panel
     if width not in WIDTHS:
         raise UserError(f"--width must be one of {', '.join(WIDTHS)}, got {width!r}")
     names, n = list(names), len(names)
@@ -174,20 +174,7 @@ def paper_figure(sample, names, labels, width: str = "single"):
                     ax.yaxis.set_major_locator(MaxNLocator(3 if width == "single" else 4, prune="both"))
                 ax.set_xlim(ranges[j][0], ranges[j][1])
                 ax.xaxis.set_major_locator(MaxNLocator(3 if width == "single" else 4, prune="both"))
-                if i == n - 1:
-                    ax.set_xlabel(labels[j])
-                    if n > 2:
-                        for t in ax.get_xticklabels():
-                            t.set_rotation(40)
-                            t.set_ha("right")
-                else:
-                    ax.tick_params(labelbottom=False)
-                    ax.xaxis.get_offset_text().set_visible(False)
-                if j == 0 and i != 0:
-                    ax.set_ylabel(labels[i])
-                elif i != j:
-                    ax.tick_params(labelleft=False)
-                    ax.yaxis.get_offset_text().set_visible(False)
+                label_panel(ax, i, j, n, labels, rotate=n > 2)
         if n == 1:
             axes[0, 0].set_ylabel("posterior density (peak = 1)", color=INK)
     return fig

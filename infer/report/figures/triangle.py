@@ -102,21 +102,10 @@ def triangle_figure(samples_after_burn: Samples | WeightedSample, names, best: d
                 ax.xaxis.set_major_locator(MaxNLocator(4, prune="both"))
                 if i != j:
                     ax.yaxis.set_major_locator(MaxNLocator(4, prune="both"))
-                if i == n - 1:
-                    ax.set_xlabel(labels[j])
-                    for t in ax.get_xticklabels():
-                        t.set_rotation(40)
-                        t.set_ha("right")
-                else:
-                    ax.tick_params(labelbottom=False)
-                    ax.xaxis.get_offset_text().set_visible(False)
-                if j == 0 and i != 0:
-                    ax.set_ylabel(labels[i])
-                else:
-                    ax.tick_params(labelleft=False)
-                    ax.yaxis.get_offset_text().set_visible(False)
+                label_panel(ax, i, j, n, labels)
                 if i == j:
                     ax.tick_params(left=False, right=False, which="both", labelleft=False)
+                    ax.yaxis.get_offset_text().set_visible(False)
         fig.text(left, 1 - 0.25 / height, title, ha="left", va="top", fontsize=fs, color=INK,
                  linespacing=1.3)
         handles = [Patch(facecolor=DEEP, edgecolor=DEEP, label="68 % credible region"),
@@ -191,3 +180,22 @@ def _pair_panel(ax, x, y, rx, ry, best, w=None):
 #: Public names of the panel painters (used by the paper figures, `infer.report.figures.paper`).
 diag_panel = _diag_panel
 pair_panel = _pair_panel
+
+
+def label_panel(ax, i: int, j: int, n: int, labels, rotate: bool = True) -> None:
+    """Axis labels and tick labels of panel (i, j) of an n × n corner grid: x labels on the bottom row
+    (rotated when ``rotate``), y labels in the first column, none inside (offset texts hidden with them)."""
+    if i == n - 1:
+        ax.set_xlabel(labels[j])
+        if rotate:
+            for t in ax.get_xticklabels():
+                t.set_rotation(40)
+                t.set_ha("right")
+    else:
+        ax.tick_params(labelbottom=False)
+        ax.xaxis.get_offset_text().set_visible(False)
+    if j == 0 and i != 0:
+        ax.set_ylabel(labels[i])
+    elif i != j:
+        ax.tick_params(labelleft=False)
+        ax.yaxis.get_offset_text().set_visible(False)
