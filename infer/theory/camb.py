@@ -14,7 +14,7 @@ Model and fixed assumptions (each also recorded by `CambTheory.describe`):
   ``y_he`` (absent: from BBN), ``w0``/``wa`` (either given: the parametrised post-Friedmann dark energy
   of Fang, Hu & Lewis 2008, PRD 78, 087303, CAMB's ``ppf``, which may cross w = −1; set before the θ_* →
   H₀ solve), ``omega_k`` (|Ω_k| ≤ `OMEGA_K_MAX`, else ``outside-code-range``), ``r`` (given: tensors on,
-  n_t = −r/8 by CAMB's consistency default, primordial BB to ℓ = `TENSOR_ELL_MAX`), ``a_lens`` (CAMB's
+  n_t = −r/8 (2 − n_s − r/8) with its running, CAMB's second-order consistency default, primordial BB to ℓ = `TENSOR_ELL_MAX`), ``a_lens`` (CAMB's
   ``Alens``, scaling the lensing potential in the lensed spectra) and ``n_run`` (dn_s/d ln k). Derived
   besides: r_drag, r_*, z_*, z_drag (CAMB's), Ω_DE (``Omega_Lambda``: the dark-energy density today)
   and ω_ν = Ω_ν h².
@@ -23,8 +23,8 @@ Model and fixed assumptions (each also recorded by `CambTheory.describe`):
   ``neutrino_masses = "one-massive"``; ``"degenerate"``: three equal masses, up to 3 eV), the rest of
   ``n_eff`` (default 3.044) massless — common practice (the minimal mass of the normal ordering; N_eff =
   3.044 from the standard-model decoupling calculations of Froustey, Pitrou & Volpe 2020, JCAP 12, 015 and
-  Bennett et al. 2021, JCAP 04, 073; cited from memory). The massive state carries N_eff/3 of the
-  relativistic degrees of freedom, CAMB's convention.
+  Bennett et al. 2021, JCAP 04, 073; cited from memory). The n massive states carry min(N_eff, n·3.044/3)
+  of N_eff and the rest is massless (CAMB's convention, measured on CAMB 2.0).
 * Helium fraction Y_He from BBN consistency with ω_b and ΔN_eff (CAMB's default PRIMAT table, Pitrou et
   al. 2018, Phys. Rep. 754, 1). Points with ω_b outside the table are refused (``bbn-out-of-range``)
   rather than silently clamped to its edge, which is what the interpolator would do.
