@@ -50,11 +50,13 @@ from infer.errors import UserError
 log = logging.getLogger("infer")
 
 #: Mixed into every mock's seed sequence, so that the mocks never share a stream with a run's own seed.
+from infer.analysis.calibration import (LEVELS, Verdict, assess, binomial_band, default_bins,  # noqa: F401
+                                        histogram, inside, weighted_rank)
+from infer.store.calibrationfile import FORMAT, FROZEN, SCALARS, Record  # noqa: F401
+
 SALT = 0xCA1B
 #: Central credible intervals whose coverage is measured.
-LEVELS = (0.68, 0.95)
 #: Per-mock scalars stored beside the truth and the ranks (see `MockRunner`).
-SCALARS = ("ess", "exact_calls", "converged", "seconds", "engine_seed")
 
 
 # -- prior draws ---------------------------------------------------------------------------------------
@@ -286,73 +288,6 @@ def _ensemble(cfg, path):
                                                           "converged": outcome.reason == "converged"}
 
 
-# -- ranks and coverage (pure functions) -------------------------------------------------------------------
-def weighted_rank(draws, weights, truth) -> np.ndarray:
-    """u_j = weighted fraction of the draws below truth_j (ties count half), per parameter (P,)."""
-    draws, w = np.atleast_2d(np.asarray(draws, float)), np.asarray(weights, float)
-    w = w / w.sum()
-    below = (draws < truth[None, :]).astype(float) + 0.5 * (draws == truth[None, :])
-    return w @ below
-
-
-def inside(u, level: float) -> np.ndarray:
-    """Whether the central interval of mass ``level`` of the (weighted) CDF holds the truth: |u − ½| < level/2."""
-    return np.abs(np.asarray(u, float) - 0.5) < 0.5 * level
-
-
-def histogram(u, bins: int) -> np.ndarray:
-    """Counts of u in ``bins`` equal bins of [0, 1], per parameter: (bins, P)."""
-    u = np.atleast_2d(np.asarray(u, float).T).T
-    k = np.clip((u * bins).astype(int), 0, bins - 1)
-    return np.stack([np.bincount(k[:, j], minlength=bins) for j in range(u.shape[1])], axis=1)
-
-
-def binomial_band(n: int, bins: int, mass: float = 0.99) -> tuple[float, float]:
-    """Central ``mass`` interval of one bin's count under calibration, Binomial(n, 1/bins)."""
-    lo, hi = stats.binom.interval(mass, n, 1.0 / bins)
-    return float(lo), float(hi)
-
-
-@dataclass(frozen=True)
-class Verdict:
-    """Per parameter: coverage and its binomial error at each level, the rank χ² and its p-value."""
-    names: tuple
-    n: int
-    bins: int
-    coverage: np.ndarray          # (levels, P)
-    error: np.ndarray             # (levels, P), [p̂(1 − p̂)/N]^½
-    pull: np.ndarray              # (levels, P), (p̂ − p) / [p(1 − p)/N]^½
-    counts: np.ndarray            # (bins, P)
-    chi2: np.ndarray              # (P,)
-    p_value: np.ndarray           # (P,)
-
-
-def assess(u, names, bins: int) -> Verdict:
-    """Coverage, rank histograms and the χ² test of flatness of the ranks ``u`` (N, P)."""
-    u = np.asarray(u, float)
-    n = len(u)
-    if n < 1:
-        raise UserError("no finished mock to assess")
-    levels = np.array(LEVELS)[:, None]
-    cov = np.stack([inside(u, lv).mean(axis=0) for lv in LEVELS])
-    err = np.sqrt(cov * (1 - cov) / n)
-    pull = (cov - levels) / np.sqrt(levels * (1 - levels) / n)
-    counts = histogram(u, bins)
-    test = stats.chisquare(counts, axis=0)
-    return Verdict(tuple(names), n, bins, cov, err, pull, counts, np.asarray(test.statistic, float),
-                   np.asarray(test.pvalue, float))
-
-
-def default_bins(n: int) -> int:
-    """Rank-histogram bins: about 20 mocks per bin, 2–20 (our choice: comfortably above the ≥ 5 expected counts
-    per bin that Pearson's χ² needs, a rule of thumb of common practice)."""
-    return int(np.clip(n // 20, 2, 20))
-
-
-# -- the record of finished mocks: NAME.calibration.h5 -------------------------------------------------
-FORMAT, FORMAT_VERSION = "infer-calibration", 1
-#: Arguments a continued calibration must repeat exactly (a larger --mocks extends it).
-FROZEN = ("run_file_sha256", "dataset_sha256", "spec_sha256", "seed", "fit_cov_scale", "engine", "names")
 
 
 def request(setup: Setup, spec_path) -> dict:
@@ -364,92 +299,6 @@ def request(setup: Setup, spec_path) -> dict:
             "spec_sha256": hashlib.sha256(Path(spec_path).read_bytes()).hexdigest(), "seed": setup.seed,
             "fit_cov_scale": float(setup.fit_cov_scale),
             "engine": setup.engine, "names": list(setup.names)}
-
-
-class Record:
-    """Finished mocks (rows in completion order; ``index`` says which mock) and the failed ones."""
-
-    def __init__(self, req: dict, rows: dict | None = None, failed: dict | None = None):
-        P = len(req["names"])
-        self.request = req
-        self.rows = rows or {"index": np.zeros(0, np.int64), "truth": np.zeros((0, P)), "rank": np.zeros((0, P)),
-                             **{k: np.zeros(0) for k in SCALARS}}
-        self.failed = failed or {"index": np.zeros(0, np.int64), "reason": []}
-
-    @property
-    def done(self) -> set:
-        """Finished mocks and those that failed for good (a worker that died is tried again on a rerun)."""
-        from infer.parallel import DIED
-        kept = [i for i, r in zip(self.failed["index"].tolist(), self.failed["reason"]) if r != DIED]
-        return set(self.rows["index"].tolist()) | set(kept)
-
-    def add(self, index: int, lp: float, blob, reason, P: int) -> None:
-        again = self.failed["index"] == index
-        if again.any():
-            self.failed = {"index": self.failed["index"][~again],
-                           "reason": [r for r, a in zip(self.failed["reason"], again) if not a]}
-        if reason is not None:
-            self.failed = {"index": np.append(self.failed["index"], index), "reason": self.failed["reason"] + [reason]}
-            return
-        r = self.rows
-        r["index"] = np.append(r["index"], index)
-        r["truth"] = np.vstack([r["truth"], blob[:P]])
-        r["rank"] = np.vstack([r["rank"], blob[P:2 * P]])
-        for k, v in zip(SCALARS, blob[2 * P:]):
-            r[k] = np.append(r[k], v)
-
-    def sorted(self, upto: int) -> dict:
-        """The finished mocks with index < ``upto``, in index order."""
-        r = self.rows
-        keep = np.flatnonzero(r["index"] < upto)
-        keep = keep[np.argsort(r["index"][keep])]
-        return {k: v[keep] for k, v in r.items()}
-
-    def write(self, path) -> None:
-        """Crash-safe: a new file under a temporary name, renamed over the old one (`infer.atomic`)."""
-        import json
-        import h5py
-        from infer.atomic import write_atomic
-
-        def fill(tmp):
-            with h5py.File(tmp, "w") as h5:
-                h5.attrs["format"], h5.attrs["format_version"] = FORMAT, np.int64(FORMAT_VERSION)
-                h5.attrs["request"] = json.dumps(self.request, sort_keys=True)
-                g = h5.create_group("mocks")
-                for k, v in self.rows.items():
-                    g.create_dataset(k, data=v)
-                for lv in LEVELS:
-                    g.create_dataset(f"inside_{round(100 * lv)}", data=inside(self.rows["rank"], lv))
-                f = h5.create_group("failed")
-                f.create_dataset("index", data=self.failed["index"])
-                f.create_dataset("reason", data=np.array(self.failed["reason"], dtype=object),
-                                 dtype=h5py.string_dtype())
-        write_atomic(path, fill)
-
-    @classmethod
-    def read(cls, path) -> "Record":
-        import json
-        import h5py
-        from infer import paths
-        if paths.hdf5_format(path) != FORMAT:
-            raise UserError(f"{path} exists and is not an infer calibration record; choose another --out or "
-                            "move the file yourself")
-        try:
-            with h5py.File(path, "r") as h5:
-                req = json.loads(h5.attrs["request"])
-                rows = {k: np.asarray(h5["mocks"][k]) for k in ("index", "truth", "rank") + SCALARS}
-                failed = {"index": np.asarray(h5["failed/index"]),
-                          "reason": [r.decode() if isinstance(r, bytes) else str(r) for r in h5["failed/reason"]]}
-        except (OSError, KeyError, ValueError) as err:
-            raise UserError(f"{path}: damaged calibration record ({err.__class__.__name__}: {err})") from None
-        return cls(req, rows, failed)
-
-    def check(self, req: dict, path) -> None:
-        """Refuse, in one line, a continuation with other arguments than the record's."""
-        changed = [f"{k}: {self.request.get(k)!r} → {req.get(k)!r}" for k in FROZEN if self.request.get(k) != req.get(k)]
-        if changed:
-            raise UserError(f"{path} was made with other arguments ({'; '.join(changed)}); repeat them to continue, "
-                            "or give another --out")
 
 
 def run(setup: Setup, record: Record, path, mocks: int, workers: int = 0, threads: int = 0, should_stop=None,
