@@ -45,18 +45,15 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import special, stats
 
+from infer.analysis.calibration import (LEVELS, Verdict, assess, binomial_band, default_bins,  # noqa: F401
+                                        histogram, inside, weighted_rank)
 from infer.errors import UserError
+from infer.store.calibrationfile import FORMAT, FROZEN, SCALARS, Record  # noqa: F401
 
 log = logging.getLogger("infer")
 
 #: Mixed into every mock's seed sequence, so that the mocks never share a stream with a run's own seed.
-from infer.analysis.calibration import (LEVELS, Verdict, assess, binomial_band, default_bins,  # noqa: F401
-                                        histogram, inside, weighted_rank)
-from infer.store.calibrationfile import FORMAT, FROZEN, SCALARS, Record  # noqa: F401
-
 SALT = 0xCA1B
-#: Central credible intervals whose coverage is measured.
-#: Per-mock scalars stored beside the truth and the ranks (see `MockRunner`).
 
 
 # -- prior draws ---------------------------------------------------------------------------------------
