@@ -301,13 +301,15 @@ def test_surrogate_engine_is_calibrated(tmp_path, capsys):
     capsys.readouterr()
 
 
-@pytest.mark.slow
-def test_a_halved_fit_covariance_is_caught(tmp_path, capsys):
+def test_a_halved_fit_covariance_is_caught(tmp_path, capsys, monkeypatch):
     """100 mocks fitted with half the true covariance: posteriors √2 too narrow, so the 95 % interval covers
     P(|z| < 1.96/√2) = 0.83 (scipy.stats.norm) and the rank histogram is U-shaped. The thresholds were
     chosen on 12 replicate sets of 100 mocks fitted with the closed-form posterior (pooled 95 % coverage
-    0.839 ± 0.025, worst 0.878; χ² p worst 1.2e-4; outer/middle bins ≥ 1.9)."""
-    cfg = run_file(tmp_path, workers=2)
+    0.839 ± 0.025, worst 0.878; χ² p worst 1.2e-4; outer/middle bins ≥ 1.9). The fit here is that closed-form
+    posterior with the halved covariance (the real engine gave pooled 0.83 on 100 mocks, README), so the test
+    checks that the command's statistics flag the miscalibration, at no engine cost."""
+    monkeypatch.setattr(cal, "fit_mock", exact_posterior_fit)
+    cfg = run_file(tmp_path, workers=0)
     code = main(["--quiet", "calibrate", str(cfg), "--spec", str(SPEC), "--mocks", "100", "--fit-cov-scale", "0.5",
                  "--out", str(tmp_path / "half")])
     assert code == 0
