@@ -129,13 +129,13 @@ def test_gaussian_prior_on_a_derived_quantity_gives_the_closed_form(chain, quick
     assert rec.parent["kind"] == "ensemble" and rec.parent["thin"] >= 1
 
 
-def _noisy_second_dataset(tmp_path) -> Path:
-    """A second, independent and weaker mock dataset of the same bands (a tenth of the sky: ten times the
-    Knox variance), made by `infer simulate`."""
+def _noisy_second_dataset(tmp_path, fsky: str = "0.005") -> Path:
+    """A second, independent and weaker mock dataset of the same bands (default a tenth of the sky: ten times
+    the Knox variance), made by `infer simulate`."""
     spec = tmp_path / "second_experiment.toml"
     text = SPEC.read_text()
     assert "fsky = 0.05\n" in text
-    spec.write_text(text.replace("fsky = 0.05\n", "fsky = 0.005\n"))
+    spec.write_text(text.replace("fsky = 0.05\n", f"fsky = {fsky}\n"))
     out = tmp_path / "second.h5"
     assert main(["--quiet", "simulate", str(spec), str(out), "--seed", "8"]) == 0
     return out
@@ -365,7 +365,8 @@ def _arrays(path):
 @pytest.mark.slow
 def test_worker_processes_give_the_same_weights_bit_for_bit(tiny_chain, quick_data, tmp_path):
     path, cfg = tiny_chain
-    target = _add_target(cfg, quick_data, _noisy_second_dataset(tmp_path), tmp_path / "t.toml")
+    # A hundredth of the sky: weak enough that the 40-step chain's few draws carry usable weights.
+    target = _add_target(cfg, quick_data, _noisy_second_dataset(tmp_path, "0.0005"), tmp_path / "t.toml")
     runs = {}
     for workers in (0, 2):
         out = tmp_path / f"w{workers}.h5"
@@ -384,7 +385,7 @@ def test_a_stopped_reweighting_continues_from_its_checkpoint(tiny_chain, quick_d
     import sys
     import time
     path, cfg = tiny_chain
-    second = _noisy_second_dataset(tmp_path)
+    second = _noisy_second_dataset(tmp_path, "0.0005")    # weak: usable weights from the 40-step chain
     slow = _add_target(cfg, quick_data, second, tmp_path / "slow.toml", "delay_seconds = 0.03")
     fast = _add_target(cfg, quick_data, second, tmp_path / "fast.toml")
     out, ref = tmp_path / "stopped.h5", tmp_path / "straight.h5"

@@ -64,7 +64,7 @@ def run(args) -> int:
     write_atomic(out["figure"], lambda tmp: profile_plot(result, tmp, sample, label))
     text = profrec.table(result, marginal)
     write_text_atomic(out["table"], text)
-    digests = {k: prof._sha256(out[k]) for k in ("table", "figure")}
+    digests = {k: profrec._sha256(out[k]) for k in ("table", "figure")}
     profrec.write_record(result, out["record"], digests, {"config": cfg.path, "name": cfg.name,
                                                        "dataset": cfg.dataset["file"], "chain": args.chain})
     iv = result.intervals()
