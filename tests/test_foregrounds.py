@@ -75,15 +75,15 @@ def run_file(tmp_path, params: str, nuisance: str = "", derived: str = "", ds=No
 
 
 # -- SEDs against a direct computation ---------------------------------------------------------------
-def planck(nu, t):
+def blackbody_law(nu, t):
     return 2 * sc.h * nu ** 3 / sc.c ** 2 / np.expm1(sc.h * nu / (sc.k * t))
 
 
 def dbdt_numeric(nu, t=2.7255, h=1e-5):
-    return (planck(nu, t + h) - planck(nu, t - h)) / (2 * h)
+    return (blackbody_law(nu, t + h) - blackbody_law(nu, t - h)) / (2 * h)
 
 
-def test_cib_sed_against_direct_planck_derivative(tmp_path):
+def test_cib_sed_against_a_direct_derivative_of_the_blackbody_law(tmp_path):
     # Reference: Planck's law from CODATA constants (scipy.constants), its T-derivative by central
     # differences; modified blackbody ν^β B_ν(T_d) (common practice). Band centres only for 90 and 220.
     cfg = run_file(tmp_path, "[parameters.cib_amp]\nvalue = 5.0\n", '[nuisance]\nterms = ["cib"]\n')
@@ -96,7 +96,7 @@ def test_cib_sed_against_direct_planck_derivative(tmp_path):
 
     def g(nu_ghz):
         nu = nu_ghz * 1e9
-        return nu ** 1.8 * planck(nu, 22.0) / dbdt_numeric(nu)
+        return nu ** 1.8 * blackbody_law(nu, 22.0) / dbdt_numeric(nu)
     expect = (g(220.0) / g(90.0)) ** 2
     assert tpl[row["220x220"]] / tpl[row["90x90"]] == pytest.approx(expect, rel=1e-6)
     assert tpl[row["90x220"]] ** 2 == pytest.approx(tpl[row["90x90"]] * tpl[row["220x220"]], rel=1e-10)
