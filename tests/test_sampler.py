@@ -86,12 +86,12 @@ def test_moves_leave_a_gaussian_invariant(which):
         d = x - 1.0
         return -0.5 * np.einsum("ij,jk,ik->i", d, prec, d)
     ratios = []
-    for seed in range(3):
+    for seed in range(2):
         moves = Snooker() if which == "snooker alone" else make_moves("de-snooker")
         s = emcee.EnsembleSampler(32, P, logp, vectorize=True, moves=moves)
         s._random = np.random.RandomState(seed)
         start = 1.0 + np.random.default_rng(seed).standard_normal((32, P)) @ np.linalg.cholesky(cov).T
-        s.run_mcmc(start, 5000, progress=False)
+        s.run_mcmc(start, 6000, progress=False)
         ratios.append(s.get_chain(discard=500).reshape(-1, P).std(0) / np.sqrt(np.diag(cov)))
     ratios = np.array(ratios)
     assert np.all(np.abs(ratios - 1) < 0.05), ratios

@@ -94,7 +94,8 @@ def _calls(chain):
 def test_kill_and_sigterm_then_resume_give_the_identical_weighted_sample(tmp_path, quick_data):
     # A slow theory (20 ms a call) so that the kills land mid-run.
     path, chain = engine_config(tmp_path, quick_data, theory_extra="delay_seconds = 0.02")
-    ref_path, ref_chain = engine_config(tmp_path, quick_data, name="ref", theory_extra="delay_seconds = 0.02")
+    # The reference needs no delay: delay_seconds is run control, it changes no value (config.RUN_CONTROL_THEORY_KEYS).
+    ref_path, ref_chain = engine_config(tmp_path, quick_data, name="ref")
     assert main(["--quiet", "run", str(ref_path)]) == 0
     ref = EngineFile(str(ref_chain)).read()
     log = tmp_path / "log.txt"
