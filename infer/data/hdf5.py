@@ -188,12 +188,14 @@ def read(path: Path, units=None, theory_ell_max=None) -> BandPowers:
                     sha256=digest, labels=labels, theory_ell_max=theory_ell_max)
 
 
-def check_target(path, overwrite: bool = False) -> Path:
-    """Where `write` would write, checked without writing: suffix, folder, not a folder itself, and
-    (without ``overwrite``) not an existing file. Call it before any expensive step."""
+def check_target(path, overwrite: bool = False, suffixes=SUFFIXES,
+                 kind: str = "a dataset is written as HDF5; use the suffix .h5 or .hdf5") -> Path:
+    """Where `write` would write, checked without writing: suffix (one of ``suffixes``, else ``kind`` is
+    the message), folder, not a folder itself, and (without ``overwrite``) not an existing file. Call it
+    before any expensive step; the SACC writer uses it with its own suffixes."""
     target = Path(path).expanduser()
-    if target.suffix.lower() not in SUFFIXES:
-        raise UserError(f"{target}: a dataset is written as HDF5; use the suffix .h5 or .hdf5")
+    if target.suffix.lower() not in suffixes:
+        raise UserError(f"{target}: {kind}")
     try:
         parent = target.parent.resolve()
     except (OSError, RuntimeError) as exc:

@@ -15,22 +15,11 @@ from infer.data.saccfile import MAP_UNITS, SPINS, SUFFIXES, _parse  # noqa: F401
 
 
 def check_target(path, overwrite: bool = False) -> Path:
-    """Where `write` would write, checked without writing (suffix, folder, existing file)."""
-    target = Path(path).expanduser()
-    if target.suffix.lower() not in SUFFIXES:
-        raise UserError(f"{target}: a SACC dataset is written as FITS; use the suffix .fits or .sacc")
-    try:
-        parent = target.parent.resolve()
-    except (OSError, RuntimeError) as exc:
-        raise UserError(f"{target}: its folder cannot be resolved ({exc})") from None
-    if not parent.is_dir():
-        raise UserError(f"{target}: directory {parent} does not exist")
-    target = parent / target.name
-    if target.is_dir():
-        raise UserError(f"{target}: is a directory")
-    if not overwrite and target.exists():
-        raise UserError(f"{target}: refusing to overwrite an existing file")
-    return target
+    """Where `write` would write, checked without writing (suffix, folder, existing file): the HDF5
+    writer's rule with the SACC suffixes."""
+    from infer.data import hdf5
+    return hdf5.check_target(path, overwrite, SUFFIXES,
+                             "a SACC dataset is written as FITS; use the suffix .fits or .sacc")
 
 
 def replaceable(path) -> None:
