@@ -13,7 +13,6 @@ computes them (`infer.report.figures.triangle.density_2d`) and its smoothed 1-D 
 """
 from __future__ import annotations
 
-import textwrap
 
 import matplotlib
 import numpy as np
@@ -23,8 +22,8 @@ from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator
 from scipy import stats
 
-from infer.report.figures.triangle import label_panel
-from infer.report.figures.style import ACCENT, DEEP, INK, MIST, SHALLOW, STYLE, new_figure, save, smooth
+from infer.report.figures.triangle import corner_grid, label_panel
+from infer.report.figures.style import ACCENT, DEEP, INK, MIST, SHALLOW, STYLE, save, smooth
 from infer.report.figures.triangle import density_2d
 from infer.report.figures.style import label as tex_label
 
@@ -93,16 +92,8 @@ def ellipses_figure(names, centre, covariance, tex: dict | None = None, title: s
     size = 1.75 if n > 2 else 2.6
     title = title or "Gaussian approximation"
     fs = 12.0 if n > 3 else 9.5
-    width = size * n + 0.9
-    title = textwrap.fill(title, width=max(30, int((width - 0.9) * 72 / (0.5 * fs))))
-    top_in = 0.25 + (title.count("\n") + 1) * fs * 1.3 / 72 + 0.2
-    height = size * n + 0.75 + top_in
     with matplotlib.rc_context(STYLE):
-        fig = new_figure(width, height)
-        left = 0.75 / width
-        fig.subplots_adjust(left=left, bottom=0.75 / height, right=1 - 0.15 / width, top=1 - top_in / height,
-                            wspace=0.06, hspace=0.06)
-        axes = fig.subplots(n, n, squeeze=False)
+        fig, axes, title, left, width, height, top_in = corner_grid(n, size, title, fs, char=0.5, bottom_in=0.75)
         for i in range(n):
             for j in range(n):
                 ax = axes[i, j]

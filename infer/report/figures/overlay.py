@@ -10,7 +10,6 @@ every run (`style.plot_range` of each, joined), cut at the prior edges of the fi
 """
 from __future__ import annotations
 
-import textwrap
 
 import matplotlib
 import numpy as np
@@ -19,8 +18,8 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import MaxNLocator
 
 from infer.analysis.weighted import WeightedSample
-from infer.report.figures.triangle import label_panel
-from infer.report.figures.style import (ENSEMBLE_COLOURS, INK, STYLE, new_figure, plot_range, save, smooth,
+from infer.report.figures.triangle import corner_grid, label_panel
+from infer.report.figures.style import (ENSEMBLE_COLOURS, INK, STYLE, plot_range, save, smooth,
                                         weighted_bins)
 from infer.report.figures.style import label as tex_label
 from infer.report.figures.triangle import density_2d
@@ -67,18 +66,10 @@ def overlay_figure(runs, names) -> Figure:
     labels = [tex_label(runs[0][1], nm) for nm in names]
     size = 1.75 if n > 2 else 2.6
     fs = 13.0 if n > 3 else 10.0
-    width = size * n + 0.9
-    title = textwrap.fill(f"Marginal posteriors of {len(runs)} runs: 68 % and 95 % credible regions, "
-                          "1-D marginals scaled to a peak of 1",
-                          width=max(30, int((width - 0.9) * 72 / (0.48 * fs))))
-    top_in = 0.25 + (title.count("\n") + 1) * fs * 1.3 / 72 + 0.2
-    height = size * n + 0.7 + top_in
     with matplotlib.rc_context(STYLE):
-        fig = new_figure(width, height)
-        left = 0.75 / width
-        fig.subplots_adjust(left=left, bottom=0.7 / height, right=1 - 0.15 / width, top=1 - top_in / height,
-                            wspace=0.06, hspace=0.06)
-        axes = fig.subplots(n, n, squeeze=False)
+        fig, axes, title, left, width, height, top_in = corner_grid(
+            n, size, f"Marginal posteriors of {len(runs)} runs: 68 % and 95 % credible regions, "
+            "1-D marginals scaled to a peak of 1", fs)
         for i in range(n):
             for j in range(n):
                 ax = axes[i, j]

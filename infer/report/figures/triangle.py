@@ -76,16 +76,8 @@ def triangle_figure(samples_after_burn: Samples | WeightedSample, names, best: d
                  f"({shape[1]} ensemble{'s' if shape[1] != 1 else ''} × {shape[2]} walkers × "
                  f"{shape[0]:,} steps after burn-in)")
     fs = 13.0 if n > 3 else 10.0
-    width = size * n + 0.9
-    title = textwrap.fill(title, width=max(30, int((width - 0.9) * 72 / (0.48 * fs))))
-    top_in = 0.25 + (title.count("\n") + 1) * fs * 1.3 / 72 + 0.2
-    height = size * n + 0.7 + top_in
     with matplotlib.rc_context(STYLE):
-        fig = new_figure(width, height)
-        left = 0.75 / width
-        fig.subplots_adjust(left=left, bottom=0.7 / height, right=1 - 0.15 / width, top=1 - top_in / height,
-                            wspace=0.06, hspace=0.06)
-        axes = fig.subplots(n, n, squeeze=False)
+        fig, axes, title, left, width, height, top_in = corner_grid(n, size, title, fs)
         for i in range(n):
             for j in range(n):
                 ax = axes[i, j]
@@ -199,3 +191,19 @@ def label_panel(ax, i: int, j: int, n: int, labels, rotate: bool = True) -> None
     elif i != j:
         ax.tick_params(labelleft=False)
         ax.yaxis.get_offset_text().set_visible(False)
+
+
+def corner_grid(n: int, size: float, title: str, fs: float, char: float = 0.48, bottom_in: float = 0.7):
+    """An n × n grid of panels of ``size`` inches under a wrapped ``title`` of font size ``fs`` (``char``:
+    a character's width in units of ``fs``): (figure, axes, wrapped title, left margin as a fraction, width,
+    height and title band in inches).
+    Call it inside the figure's ``rc_context``."""
+    width = size * n + 0.9
+    title = textwrap.fill(title, width=max(30, int((width - 0.9) * 72 / (char * fs))))
+    top_in = 0.25 + (title.count("\n") + 1) * fs * 1.3 / 72 + 0.2
+    height = size * n + bottom_in + top_in
+    fig = new_figure(width, height)
+    left = 0.75 / width
+    fig.subplots_adjust(left=left, bottom=bottom_in / height, right=1 - 0.15 / width, top=1 - top_in / height,
+                        wspace=0.06, hspace=0.06)
+    return fig, fig.subplots(n, n, squeeze=False), title, left, width, height, top_in
