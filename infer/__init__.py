@@ -7,4 +7,4 @@ likelihood, posterior) → `parallel` (where a log-density runs: in process, wor
 files) → `analysis` (diagnostics, marginals, importance weights) → `report` (tables, figures, status).
 `forecast` makes mock datasets for invented experiments and Fisher matrices; `cli` is the `infer` command.
 """
-__version__ = "0.3.0"
+__version__ = "0.4.0"

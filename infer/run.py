@@ -163,6 +163,9 @@ def resuming(chain: Path, store_class, config_path, override, extra_changes, sum
 
 #: The first version whose DE-snooker move leaves the target invariant (`infer.sampling.moves.Snooker`).
 FIXED_SNOOKER = (0, 3, 0)
+#: The first version whose surrogate engine samples its surrogate chains with the plain run's driver
+#: (`infer.sampling.surrogate_chain`); earlier engine runs take other draws and cannot be replayed.
+DRIVER_SURROGATE_CHAIN = (0, 4, 0)
 
 
 def check_moves_version(chain, cfg) -> None:
@@ -184,6 +187,10 @@ def check_moves_version(chain, cfg) -> None:
         raise UserError(f"refusing to resume {chain}: it was written by infer {text}, whose DE-snooker move "
                         "narrowed posteriors by about 1–3 % in sd (fixed in 0.3.0); start a new chain "
                         "(`infer run --replace` sets this one aside)")
+    if version < DRIVER_SURROGATE_CHAIN and cfg.sampling.engine == "surrogate":
+        raise UserError(f"refusing to resume {chain}: it was written by infer {text}, whose surrogate chains "
+                        "were drawn by another sampling loop, so this version cannot replay its exact calls; "
+                        "start a new chain (`infer run --replace` sets this one aside)")
 
 
 def check_dataset(state, data, cfg, chain) -> None:

@@ -129,14 +129,16 @@ def problem_for(cfg):
     return EmulatedProblem(cfg, surrogate_options={"method": s.method}, fit_starts=s.fit_starts)
 
 
-def chain_sampler_for(cfg, problem):
+def chain_sampler_for(cfg, problem, should_stop=None):
+    """The surrogate chain: the plain run's driver on the surrogate posterior, polling ``should_stop``."""
     from infer.sampling.surrogate_chain import sample_surrogate
 
     def sample(logpost, laplace, seed, need):
         # The surrogate chain's own rule (R̂ < 1.01, > 50 τ, ESS ≥ the draws it must provide) is fixed, not the
         # run's [stopping]: a resume with another weight-ESS target must repeat the same chains.
         return sample_surrogate(logpost, laplace, seed, need, lower=problem.lower, upper=problem.upper,
-                                ensembles=max(2, cfg.sampling.ensembles))
+                                ensembles=max(2, cfg.sampling.ensembles), should_stop=should_stop,
+                                log_minutes=cfg.sampling.log_minutes)
     return sample
 
 
@@ -164,7 +166,7 @@ def execute(cfg, store, problem, *, early=None, clock=None, start_event=None) ->
             if stored:
                 log.info("surrogate engine: %d exact calls are in the chain file and are replayed", stored)
             engine = Engine(problem, exact, cfg.surrogate, cfg.stopping.ess_above, cfg.seed,
-                            chain_sampler_for(cfg, problem), report=progress.stage)
+                            chain_sampler_for(cfg, problem, stop), report=progress.stage)
             t0 = time.monotonic()
             result = engine.run()
         except Interrupted:

@@ -36,3 +36,22 @@ def test_a_chain_with_the_biased_snooker_move_is_refused(write_config, capsys):
     with h5py.File(chain, "r+") as f:
         f.attrs["infer_version"] = b"0.3.0"
     assert main(["--quiet", "resume", str(chain), "--steps", "30"]) == 0
+
+
+def test_a_surrogate_engine_chain_before_the_driver_chain_is_refused(tmp_path):
+    # From 0.4 the surrogate chain is the plain driver's (infer/sampling/surrogate_chain.py): the exact calls
+    # of an older engine run cannot be replayed, so its resume is one line, not a divergence mid-run.
+    import h5py
+    from infer.run import check_moves_version
+    chain = tmp_path / "old-engine.h5"
+    cfg = SimpleNamespace(sampling=SimpleNamespace(engine="surrogate", moves="de-snooker"))
+    plain = SimpleNamespace(sampling=SimpleNamespace(engine="ensemble", moves="de-snooker"))
+    with h5py.File(chain, "w") as f:
+        f.attrs["infer_version"] = b"0.3.0"
+    with pytest.raises(UserError) as err:
+        check_moves_version(chain, cfg)
+    assert "\n" not in str(err.value) and "0.3.0" in str(err.value) and "replay" in str(err.value)
+    check_moves_version(chain, plain)                       # an ensemble chain of 0.3 resumes
+    with h5py.File(chain, "r+") as f:
+        f.attrs["infer_version"] = b"0.4.0"
+    check_moves_version(chain, cfg)

@@ -39,7 +39,7 @@ from infer.analysis.samples import Samples
 from infer.errors import EXIT_OK, EXIT_PAUSED
 from infer.parallel import Interrupted
 from infer.sampling import stopping
-from infer.sampling.moves import LockStep
+from infer.sampling.moves import LockStep, OneByOne
 from infer.sampling.progress import Progress
 from infer.sampling.state import BlobLayout, DrawBuffer
 from infer.store.base import ChainBackend, ChainState
@@ -63,8 +63,14 @@ class Outcome:
 class Driver:
     """Runs a chain held by ``store`` (whose contents are ``state``) on ``evaluator`` towards a length."""
 
-    def __init__(self, cfg, store: ChainBackend, evaluator, state: ChainState, interactive=None):
+    def __init__(self, cfg, store: ChainBackend, evaluator, state: ChainState, interactive=None,
+                 handle_signals: bool = True, check_log=None, lockstep: bool = True):
         self.cfg = cfg
+        # Inside another computation that owns the signals (the surrogate engine), the caller's evaluator
+        # polls the caller's flag and raises `Interrupted`; the driver then pauses as on its own signal.
+        self.handle_signals = handle_signals
+        self.check_log = check_log
+        self.stepper = LockStep if lockstep else OneByOne      # OneByOne: a cheap in-process density
         self.store = store
         self.evaluator = evaluator
         self.state = state
@@ -94,7 +100,8 @@ class Driver:
             raise Interrupted
 
     def _install(self):
-        self._old = {s: signal.signal(s, self._handler) for s in (signal.SIGTERM, signal.SIGINT)}
+        if self.handle_signals:
+            self._old = {s: signal.signal(s, self._handler) for s in (signal.SIGTERM, signal.SIGINT)}
 
     def _restore(self):
         for s, h in self._old.items():
@@ -156,7 +163,7 @@ class Driver:
         self.pending_conv.append(self.verdict.row())
         eta = stopping.eta_steps(self.verdict, self.cfg.stopping) * self.step_cost
         self.progress.update(done, np.mean(self.accept_hist[-50:]), self.verdict, eta)
-        log_fn = log.info if not self.progress.interactive else log.debug
+        log_fn = self.check_log or (log.info if not self.progress.interactive else log.debug)
         log_fn("check at step %d: %s", done, "targets met" if self.verdict.met else "; ".join(self.verdict.missing))
 
     # -- one step ------------------------------------------------------------------------------------
@@ -206,7 +213,7 @@ class Driver:
         self.verdict = None
         done = self.chain.steps
         self.progress = Progress(done, target_steps, cfg.sampling.log_minutes, self.interactive)
-        stepper = LockStep(self.current, self.layout, cfg.sampling.moves, self._log_prob)
+        stepper = self.stepper(self.current, self.layout, cfg.sampling.moves, self._log_prob)
         self._old = {}
         reason, code = "max-steps", EXIT_OK
         try:

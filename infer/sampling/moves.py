@@ -207,3 +207,41 @@ class LockStep:
 
     def __exit__(self, *exc):
         self.close()
+
+
+class OneByOne:
+    """The ensembles of ``state`` stepped one after another in this thread (the interface of `LockStep`).
+
+    For a cheap in-process log-density (the surrogate chain) there is nothing to gain from batching the
+    ensembles' sub-steps, and `LockStep`'s thread hand-overs cost more than the evaluations. Each ensemble
+    draws from its own random state in the same order either way, so the chains are the same (for an
+    evaluator whose value at a point does not depend on the batch it came in)."""
+
+    def __init__(self, state: StepState, layout: BlobLayout, moves: str,
+                 evaluate: Callable[[np.ndarray], list]):
+        self.layout = layout
+        self.evaluate = evaluate
+        E, W, P = state.position.shape
+        self.calls = 0
+        self._gens = []
+        for e in range(E):
+            s = emcee.EnsembleSampler(W, P, self._log_prob, vectorize=True, moves=make_moves(moves))
+            s.log_prob_fn = self._log_prob
+            self._gens.append(s.sample(state.ensemble(e), iterations=None, store=False,
+                                       skip_initial_state_check=True))
+
+    def _log_prob(self, coords):
+        self.calls += 1
+        return self.evaluate(np.array(coords, float))
+
+    def step(self) -> StepState:
+        return StepState.from_ensembles([next(g) for g in self._gens], self.layout)
+
+    def close(self) -> None:
+        self._gens = []
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

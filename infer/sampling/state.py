@@ -108,7 +108,10 @@ class StepState:
         import emcee
         if self.rng is None:
             raise ValueError("this step state has no random states to continue from")
-        return emcee.State(self.position[e].copy(), log_prob=self.log_post[e].copy(), blobs=self.blobs[e],
+        blobs = self.blobs[e]
+        if blobs.shape[-1] == 1:          # emcee squeezes a one-value blob to a scalar per walker: match it
+            blobs = blobs[:, 0].copy()
+        return emcee.State(self.position[e].copy(), log_prob=self.log_post[e].copy(), blobs=blobs,
                            random_state=self.rng[e])
 
 
