@@ -1,12 +1,12 @@
 """Sampling a surrogate posterior: the ensemble driver of a plain run, on a cheap vectorised log-density.
 
 The surrogate engine (`infer.sampling.engine`) needs many nearly independent draws of exp s(x). They come
-from the driver of a plain run (`infer.sampling.driver.Driver`) — independent emcee ensembles stepped in
-lock-step with the default differential-evolution/snooker moves (ter Braak 2006; ter Braak & Vrugt 2008),
-judged by the same stopping rule (`infer.sampling.stopping`: automatic burn-in, rank-normalised split-R̂
-between ensembles, bulk/tail ESS, run length over τ; Vehtari et al. 2021) — with two differences: the
-chain lives in a `infer.store.memory.MemoryStore`, and the evaluator calls the vectorised surrogate on a
-whole half-ensemble of every ensemble at once. The walkers start in a ball of half the Laplace σ around
+from the driver of a plain run (`infer.sampling.driver.Driver`) — independent emcee ensembles with the
+default differential-evolution/snooker moves (ter Braak 2006; ter Braak & Vrugt 2008), judged by the same
+stopping rule (`infer.sampling.stopping`: automatic burn-in, rank-normalised split-R̂ between ensembles,
+bulk/tail ESS, run length over τ; Vehtari et al. 2021) — with two differences: the chain lives in a
+`infer.store.memory.MemoryStore`, and the ensembles are stepped one after another (`moves.OneByOne`,
+each sub-step one vectorised surrogate call), since thread hand-overs would cost more than the calls. The walkers start in a ball of half the Laplace σ around
 the best fit (`infer.sampling.start.gaussian_ball`). The kept draws (after the burn-in the rule chose) are
 thinned by ⌈τ⌉ per walker, so that they can serve as (nearly) independent proposal draws.
 
